@@ -53,6 +53,8 @@ class Recorder:
         Marks the whole recording as one labelled interval.
     flush_interval_s : float
         At most this much data is lost if the process is killed.
+    max_frames : int, optional
+        Write at most this many frames; ``reached_max`` is set then.
 
     Attributes
     ----------
@@ -76,6 +78,7 @@ class Recorder:
         label: str | None = None,
         flush_interval_s: float = 0.25,
         n_segments: int | None = None,
+        max_frames: int | None = None,
     ):
         self.path = Path(path)
         self.ring = ring
@@ -89,6 +92,8 @@ class Recorder:
         self.flush_interval_s = float(flush_interval_s)
         self.n_segments = n_segments
         self.label = label
+        self.max_frames = max_frames
+        self.reached_max = threading.Event()
         if label is not None:
             check_label_text(label)
         self.error: str | None = None
@@ -217,6 +222,11 @@ class Recorder:
 
     def _write_pending(self, f: h5py.File) -> None:
         block = self._cursor.read()
+        if self.max_frames is not None:
+            room = self.max_frames - self.frames_written
+            if len(block) >= room:
+                block = block.slice(0, max(room, 0))
+                self.reached_max.set()
         raw = f["raw"]
         n = len(block)
         if n:

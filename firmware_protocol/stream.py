@@ -175,11 +175,14 @@ class StreamDecoder:
 
         for i in np.flatnonzero(slow).tolist():
             s = int(starts[i])
+            frame = buf[s : s + int(lengths[i])]
             try:
-                pkt = decode_frame(buf[s : s + int(lengths[i])])
+                pkt = decode_frame(frame)
             except PacketError as exc:
                 self.drops[exc.cause] += 1
-                continue
+                pkt = _packet_in_tail(frame)
+                if pkt is None:
+                    continue
             if isinstance(pkt, Samples):
                 n = len(pkt.codes)
                 samples.frame_index.append(np.array([i]))
@@ -193,6 +196,23 @@ class StreamDecoder:
         n_samples = sum(len(f) for f in samples.frame_index)
         self.packets += n_samples + len(controls)
         return _in_order(samples, controls)
+
+
+def _packet_in_tail(frame: bytes):
+    """A whole packet at the end of a bad frame, or None.
+
+    A device that resets in the middle of a packet starts the next one without
+    a 0x00 in between: the cut bytes and a good packet arrive as one frame.
+    The failed prefix is already counted; this finds the packet after it. Only
+    frames that failed take this path, and a tail must pass the CRC like any
+    packet.
+    """
+    for k in range(1, len(frame) - 2):
+        try:
+            return decode_frame(frame[k:])
+        except PacketError:
+            continue
+    return None
 
 
 def _frame_bounds(buf: bytes, arr: np.ndarray, last: int) -> tuple[np.ndarray, np.ndarray]:
