@@ -55,7 +55,7 @@ def crc16_rows(rows: np.ndarray, *, init: int = CRC_INIT) -> np.ndarray:
     return crc16_columns(np.ascontiguousarray(rows.T), init=init)
 
 
-@functools.lru_cache(maxsize=64)
+@functools.lru_cache(maxsize=8)
 def _position_tables(length: int, init: int) -> tuple[np.ndarray, int]:
     """Per-position tables for messages of ``length`` bytes.
 
@@ -71,6 +71,20 @@ def _position_tables(length: int, init: int) -> tuple[np.ndarray, int]:
     return tables, crc16(bytes(length), init=init)
 
 
+@functools.lru_cache(maxsize=8)
+def _pair_tables(length: int, init: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """Tables for two positions at once: P_p[(a << 8) | b] = T_2p[a] ^ T_2p+1[b].
+
+    Halves the number of table look-ups (the costly step) at 128 KiB per pair.
+    """
+    tables, zero_crc = _position_tables(length, init)
+    n_pairs = length // 2
+    pairs = np.empty((n_pairs, 65536), dtype=np.uint16)
+    for p in range(n_pairs):
+        pairs[p] = (tables[2 * p][:, None] ^ tables[2 * p + 1][None, :]).ravel()
+    return pairs, tables, zero_crc
+
+
 def crc16_columns(columns: np.ndarray, *, init: int = CRC_INIT) -> np.ndarray:
     """CRC of M messages stored transposed: ``columns[j]`` holds byte j of each.
 
@@ -83,10 +97,16 @@ def crc16_columns(columns: np.ndarray, *, init: int = CRC_INIT) -> np.ndarray:
     ndarray of uint16, shape (M,)
     """
     length, m = columns.shape
-    tables, zero_crc = _position_tables(length, init)
+    pairs, tables, zero_crc = _pair_tables(length, init)
     crc = np.full(m, zero_crc, dtype=np.uint16)
+    index = np.empty(m, dtype=np.uint16)
     term = np.empty(m, dtype=np.uint16)
-    for j in range(length):
-        np.take(tables[j], columns[j], out=term)
+    for p in range(pairs.shape[0]):
+        np.left_shift(columns[2 * p], 8, out=index, dtype=np.uint16)
+        np.bitwise_or(index, columns[2 * p + 1], out=index)
+        np.take(pairs[p], index, out=term)
+        crc ^= term
+    if length % 2:
+        np.take(tables[length - 1], columns[length - 1], out=term)
         crc ^= term
     return crc

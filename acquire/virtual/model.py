@@ -409,12 +409,8 @@ def _elastica_tables(
             guess = 2.0 * prev[0] - prev[1]
         else:
             guess = prev[0]
-        sol = solve_elastica(
-            length_m=length, bending_stiffness_nm2=ei, moment_nm=moment_grid, load_n=load,
-            load_angle_rad=phi, load_lever_m=lever_m, s_m=s_m, initial_kappa0_per_m=guess,
-        )
-        if not sol.converged.all():
-            raise RuntimeError(f"elastica did not converge at load {load} N")  # a bug, not a user error
+        sol = _continue_in_load(length, ei, moment_grid, load_grid[j - 1] if j else 0.0, load,
+                                phi, lever_m, s_m, prev[0], guess)
         theta[:, j] = sol.theta_rad
         kappa[:, j] = sol.kappa_per_m
         xy[:, j] = sol.xy_m
@@ -438,6 +434,35 @@ def _elastica_tables(
     for arr in (out.moment_grid, out.load_grid, out.s_m, out.tap_nodes, out.theta_taps, out.xy_nodes, out.basis):
         arr.setflags(write=False)  # shared between models through the cache
     return out
+
+
+def _continue_in_load(length, ei, moments, load_from, load_to, phi, lever_m, s_m, k_from, guess):
+    """Solve at ``load_to``; points that fail from ``guess`` are walked there
+    from ``load_from`` (root curvature ``k_from``) in smaller load steps."""
+    sol = solve_elastica(
+        length_m=length, bending_stiffness_nm2=ei, moment_nm=moments, load_n=load_to,
+        load_angle_rad=phi, load_lever_m=lever_m, s_m=s_m, initial_kappa0_per_m=guess,
+    )
+    bad = ~sol.converged
+    for n_sub in (4, 16, 64):
+        if not bad.any():
+            break
+        k = np.asarray(k_from, dtype=np.float64)[bad]
+        ok = np.ones(k.shape, dtype=bool)
+        part = None
+        for load in np.linspace(load_from, load_to, n_sub + 1)[1:].tolist():
+            part = solve_elastica(
+                length_m=length, bending_stiffness_nm2=ei, moment_nm=moments[bad], load_n=load,
+                load_angle_rad=phi, load_lever_m=lever_m, s_m=s_m, initial_kappa0_per_m=k,
+            )
+            ok &= part.converged
+            k = part.kappa_per_m[:, 0]
+        if ok.all():
+            for arr, new in ((sol.theta_rad, part.theta_rad), (sol.kappa_per_m, part.kappa_per_m), (sol.xy_m, part.xy_m)):
+                arr[bad] = new
+            sol.converged[bad] = True
+            bad[:] = False
+    return sol
 
 
 def _simpson_mean(f: np.ndarray, s: np.ndarray) -> np.ndarray:
@@ -526,7 +551,7 @@ class _GraspCycles:
         u = rng.uniform
         return [
             u(0.8, 1.6), u(0.45, 0.8), u(0.05, 0.25), u(0.3, 0.6), u(1.0, 2.5), u(0.2, 0.4), u(0.5, 0.8),
-            u(-6.0, -2.5), u(16.0, 28.0), u(0.15, 0.45), u(5.0, 9.0), u(0.0, _TWO_PI),
+            u(-0.6, -0.25), u(1.55, 2.7), u(0.2, 0.55), u(5.0, 9.0), u(0.0, _TWO_PI),
         ]
 
     def _extend(self, n_more: int) -> None:
@@ -539,7 +564,9 @@ class _GraspCycles:
         self._start = np.concatenate([self._start, starts])
         self._end = float(starts[-1] + dur[-1])
 
-    def evaluate(self, t_s: np.ndarray, ei: float) -> tuple[np.ndarray, np.ndarray]:
+    def evaluate(self, t_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Bend angle (rad, pure-moment equivalent over the sensor) and load
+        (fraction of the model's largest load) at times ``t_s``."""
         t = np.asarray(t_s, dtype=np.float64)
         with self._lock:
             t_max = float(t.max()) if t.size else 0.0
@@ -557,12 +584,12 @@ class _GraspCycles:
         a_open = a_unload + g["d_unload"]
         s_close = _smooth((tau - a_close) / g["d_close"])
         s_open = _smooth((tau - a_open) / g["d_open"])
-        kappa = g["k_open"] + (g["k_close"] - g["k_open"]) * s_close - (g["k_close"] - k_next) * s_open
+        angle = g["k_open"] + (g["k_close"] - g["k_open"]) * s_close - (g["k_close"] - k_next) * s_open
         # a small pump ripple on the actuation, a little tremble in the contact
-        kappa = kappa * (1.0 + 0.004 * np.sin(_TWO_PI * 11.0 * t))
+        angle = angle * (1.0 + 0.004 * np.sin(_TWO_PI * 11.0 * t))
         on = _smooth((tau - a_ramp) / g["d_ramp"]) - _smooth((tau - a_unload) / g["d_unload"])
         load = g["load"] * on * (1.0 + 0.05 * np.sin(_TWO_PI * g["trem_hz"] * t + g["trem_phase"]))
-        return ei * kappa, load
+        return angle, load
 
 
 # --------------------------------------------------------------------------- the model
@@ -647,13 +674,15 @@ class FingerModel:
 
         seg = self.rig.segment_lengths_m
         ei = self.bending_stiffness_nm2
-        #: curvature range the moment grid covers (pure-moment equivalent), 1/m
-        self.kappa_range_per_m = (-15.0, 50.0)
-        #: largest tip load the grid covers, N
-        self.load_max_n = 0.8
+        length = self.rig.sensor_length_m
+        #: bend angle over the sensor (rad) the moment grid covers, as M L / EI
+        self.bend_range_rad = (-1.5, 4.8)
+        #: largest tip load the grid covers, N (P L^2 / EI = 2.5)
+        self.load_max_n = 2.5 * ei / length**2
         self._tables = _elastica_tables(
             tuple(float(v) for v in seg), ei, self.load_angle_rad, self.load_lever_m,
-            ei * self.kappa_range_per_m[0], ei * self.kappa_range_per_m[1], 66, self.load_max_n, 33,
+            ei * self.bend_range_rad[0] / length, ei * self.bend_range_rad[1] / length, 64,
+            self.load_max_n, 33,
         )
         self._setup_electrics()
         self._cycles = _GraspCycles(self.seed, self.run)
@@ -719,11 +748,14 @@ class FingerModel:
         ei = self.bending_stiffness_nm2
         if self.hold is not None:
             return ei * self._hold_kappa(t), np.zeros_like(t)
+        per_angle = ei / self.rig.sensor_length_m  # moment per radian of pure-moment bend
         if self.scenario == "sweep":
-            kappa = 16.0 + 24.0 * np.sin(_TWO_PI * t / 4.0 - math.pi / 2)
-            load = 0.15 * (1.0 - np.cos(_TWO_PI * t / 9.7))
-            return ei * kappa, load
-        return self._cycles.evaluate(t, ei)
+            # bend -0.75 .. 3.85 rad every 4 s, load 0 .. 0.4 of the largest every 9.7 s
+            angle = 1.55 + 2.3 * np.sin(_TWO_PI * t / 4.0 - math.pi / 2)
+            load = 0.2 * (1.0 - np.cos(_TWO_PI * t / 9.7))
+        else:
+            angle, load = self._cycles.evaluate(t)
+        return per_angle * angle, self.load_max_n * load
 
     def _hold_kappa(self, t: np.ndarray) -> np.ndarray:
         wobble = 0.02 * np.sin(_TWO_PI * 0.7 * t) + 0.01 * np.sin(_TWO_PI * 3.1 * t + 1.0)
@@ -872,7 +904,7 @@ class FingerModel:
         others = [c for c in range(self.rig.n_channels) if c not in self._tap_of_channel]
         if others:
             moment, _ = self.inputs(t)
-            full = self.bending_stiffness_nm2 * 40.0
+            full = self.bending_stiffness_nm2 * 3.85 / self.rig.sensor_length_m
             for c in others:
                 if "pressure" in self.rig.channels[c].lower():
                     # actuation pressure, taken as proportional to the moment;

@@ -41,7 +41,10 @@ def test_crc_rows_equals_single():
 
 # Cheshire & Baker, "Consistent Overhead Byte Stuffing", IEEE/ACM Trans.
 # Networking 7(2), 1999: worked examples of the encoding (as reproduced in the
-# paper's figures and widely quoted; exact byte strings from memory).
+# paper's figures and widely quoted; exact byte strings from memory). The
+# paper's reference code ends a run of 254 non-zero bytes at the very end with
+# a final 0x01 code; some encoders (the 'cobs' package among them) omit it.
+# Both decode to the same bytes; we follow the paper.
 CHESHIRE_BAKER = [
     (b"\x00", b"\x01\x01"),
     (b"\x00\x00", b"\x01\x01\x01"),
