@@ -872,6 +872,12 @@ def fit_calibration(
             raise CalibrationError(f"segment {k}: flat resistance {r0[k]!r} ohm is not positive")
         x = (rm - r0[k]) / r0[k]
         warn: list[str] = []
+        used_labels = [labels[i] for i in np.flatnonzero(use)]
+        for i in np.flatnonzero(((kap > 0) & (x < 0)) | ((kap < 0) & (x > 0))):
+            warn.append(
+                f"hold {used_labels[i]!r} ({kap[i]:+.2f} 1/m) moved the resistance the wrong way "
+                f"(x = {x[i]:+.4f}); check its label"
+            )
         sides = {}
         for side, sel in (("positive", kap > 0), ("negative", kap < 0)):
             if sel.sum() == 0:

@@ -88,7 +88,11 @@ def superblock_flags(path: str | os.PathLike) -> int:
 
 
 def writer_alive(path: str | os.PathLike) -> bool:
-    """True if another process holds HDF5's lock on the file (a recorder still running)."""
+    """True if a process holds a lock on the file: a tapcurve recorder still writing it.
+
+    HDF5 itself gives up its lock once SWMR writing starts, so the recorder
+    holds one of its own for as long as it writes.
+    """
     fd = os.open(path, os.O_RDONLY)
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)

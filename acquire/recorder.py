@@ -7,7 +7,9 @@ that much and readers can follow the file while it grows.
 """
 from __future__ import annotations
 
+import fcntl
 import math
+import os
 import queue
 import threading
 import time
@@ -110,6 +112,7 @@ class Recorder:
         self._thread: threading.Thread | None = None
         self._t0_host = 0.0
         self._finished = threading.Event()
+        self._lock_fd: int | None = None
 
     # -- control (any thread) ---------------------------------------------------------
     def start(self) -> None:
@@ -143,6 +146,11 @@ class Recorder:
             if self.pipeline is not None and getattr(self.pipeline, "s_m", None) is not None:
                 create_derived(f, n_segments=int(self.n_segments or self.pipeline.n_segments), s_m=self.pipeline.s_m)
             f.swmr_mode = True
+            # HDF5 drops its own file lock once SWMR writing starts; ours tells
+            # readers (open_recording) that a writer is alive, so they never
+            # "repair" a file that is still being written
+            self._lock_fd = os.open(self.path, os.O_RDONLY)
+            fcntl.flock(self._lock_fd, fcntl.LOCK_SH | fcntl.LOCK_NB)  # shared: SWMR readers lock too
         except BaseException:
             f.close()
             self.path.unlink(missing_ok=True)
@@ -214,6 +222,10 @@ class Recorder:
             except Exception as exc:
                 if self.error is None:
                     self.error = f"recording to {self.path}: closing failed: {exc}"
+            finally:
+                if self._lock_fd is not None:
+                    os.close(self._lock_fd)  # releases the lock
+                    self._lock_fd = None
             try:
                 self.file_bytes = self.path.stat().st_size
             except OSError:

@@ -9,7 +9,6 @@ import hashlib
 import math
 import re
 from dataclasses import dataclass, field
-from importlib import resources
 from pathlib import Path
 
 import numpy as np
@@ -92,7 +91,7 @@ class Rig:
 
 def default_rig_text() -> str:
     """Text of the built-in demo rig (the virtual finger's)."""
-    return resources.files("acquire").joinpath("rigs/demo_finger.toml").read_text(encoding="utf-8")
+    return (Path(__file__).resolve().parent / "rigs" / "demo_finger.toml").read_text(encoding="utf-8")
 
 
 def load_rig(path: str | Path | None) -> Rig:

@@ -1,1 +1,13 @@
-"""placeholder"""
+"""The built-in virtual finger: a simulated sensor board on a pseudo-terminal.
+
+Demo scenario, made up for the demo: one finger of a greenhouse tomato-picking
+gripper. :class:`FingerModel` is the physics (elastica, time courses, divider
+electrics, ADC), pure and deterministic; :class:`VirtualFinger` puts it on a
+real pty speaking wire protocol v1; the command line part serves
+``tapcurve virtual-device``.
+"""
+from .cli import add_virtual_device_arguments, run_virtual_device
+from .device import VirtualFinger
+from .model import Faults, FingerModel
+
+__all__ = ["VirtualFinger", "FingerModel", "Faults", "add_virtual_device_arguments", "run_virtual_device"]

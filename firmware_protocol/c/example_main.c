@@ -28,7 +28,8 @@
  *
  *     tc_demo N [rate_hz [stall_at [baud]]]
  *
- *   N         sample packets to take, then the script sends STOP (default 1000)
+ *   N         sample packets to take, then the script sends STOP (default 1000);
+ *             halfway through it asks "HELLO?" once more, mid-stream
  *   rate_hz   sent as "RATE <rate_hz>" before START (default 1000)
  *   stall_at  index of a sample whose ADC read stalls for 2.5 periods, so
  *             the next sample is late (default -1: never)
@@ -414,6 +415,8 @@ static uint64_t sim_line_mark;   /* bytes the line had shifted out at the last w
 static uint32_t sim_fifo_level;  /* bytes in the simulated UART FIFO */
 static char sim_script[96];      /* what the scripted host types at boot */
 static size_t sim_script_len, sim_script_pos;
+static const char sim_hello[] = "HELLO?\n";
+static size_t sim_hello_pos;
 static const char sim_stop[] = "STOP\n";
 static size_t sim_stop_pos;
 
@@ -492,6 +495,10 @@ int board_uart_read_byte(int *byte)
 {
     if (sim_script_pos < sim_script_len) {
         *byte = (unsigned char)sim_script[sim_script_pos++];
+        return 1;
+    }
+    if (sim_taken >= sim_target / 2u && sim_hello_pos < sizeof sim_hello - 1u) {
+        *byte = (unsigned char)sim_hello[sim_hello_pos++];
         return 1;
     }
     if (sim_taken >= sim_target && sim_stop_pos < sizeof sim_stop - 1u) {

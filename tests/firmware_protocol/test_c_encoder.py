@@ -453,11 +453,11 @@ def test_demo_stream_decodes_contiguously(c_build):
 
     hellos = [c for c in controls if isinstance(c, fp.Hello)]
     replies = [c.text for c in controls if isinstance(c, fp.Reply)]
-    assert len(hellos) == 2  # at boot and for HELLO?
+    assert len(hellos) == 3  # at boot, for HELLO? before START and for HELLO? mid-stream
     for h in hellos:
         assert h.info["protocol"] == 1 and h.info["channels"] == 6 and h.info["adc_bits"] == 12
         assert isinstance(h.info["firmware"], str)
-    assert hellos[0].info["rate_hz"] == 500 and hellos[1].info["rate_hz"] == 500
+    assert [h.info["rate_hz"] for h in hellos] == [500, 500, 1000]
     assert replies == ["ERR bad rate", "OK RATE 1000", "OK START", "OK STOP"]
 
 
@@ -490,8 +490,10 @@ def test_demo_transmit_overflow_flagged(c_build):
     # bit 1 is set exactly on the packets that follow a gap
     assert np.array_equal(overflow[1:], steps > 1)
     assert not overflow[0]
+    # control packets wait for room instead of dropping, even on a full queue
     replies = [c.text for c in controls if isinstance(c, fp.Reply)]
     assert replies[-2:] == ["OK START", "OK STOP"]
+    assert sum(isinstance(c, fp.Hello) for c in controls) == 3
 
 
 def test_demo_fractional_rate_does_not_drift(c_build):
