@@ -767,6 +767,17 @@ def _fit_side(x, kappa, *, degree, side, on_non_monotone, seg) -> tuple[list[flo
             f"segment {seg}: holds with {side} curvature do not move the resistance the {side} way "
             f"(positive curvature must raise it); check the label signs and the sensor's orientation"
         )
+    # the data themselves: mean x per reference must rise with the reference
+    ks = np.unique(kappa)
+    xm = np.array([x[kappa == k].mean() for k in ks])
+    for i in np.flatnonzero(np.diff(xm) <= 0):
+        msg = (
+            f"{side} side: resistance does not rise from {ks[i]:+.2f} to {ks[i + 1]:+.2f} 1/m "
+            f"(x {xm[i]:+.4f} -> {xm[i + 1]:+.4f}); the data are not monotone"
+        )
+        if on_non_monotone == "refuse":
+            raise CalibrationError(f"segment {seg}: {msg}")
+        warnings.append(msg)
     if n_distinct <= degree and len(x) > 0:
         warnings.append(
             f"{side} side: only {n_distinct} distinct reference curvature(s); "

@@ -677,8 +677,9 @@ class FingerModel:
         length = self.rig.sensor_length_m
         #: bend angle over the sensor (rad) the moment grid covers, as M L / EI
         self.bend_range_rad = (-1.5, 4.8)
-        #: largest tip load the grid covers, N (P L^2 / EI = 2.5)
-        self.load_max_n = 2.5 * ei / length**2
+        #: largest tip load the grid covers, N (P L^2 / EI = 2: clear of the
+        #: snap-through that a strongly curled finger meets under more load)
+        self.load_max_n = 2.0 * ei / length**2
         self._tables = _elastica_tables(
             tuple(float(v) for v in seg), ei, self.load_angle_rad, self.load_lever_m,
             ei * self.bend_range_rad[0] / length, ei * self.bend_range_rad[1] / length, 64,
@@ -761,14 +762,13 @@ class FingerModel:
         wobble = 0.02 * np.sin(_TWO_PI * 0.7 * t) + 0.01 * np.sin(_TWO_PI * 3.1 * t + 1.0)
         return self.hold_curvature_per_m + wobble
 
-    def _grid_weights(self, t: np.ndarray):
-        moment, load = self.inputs(t)
+    def _grid_weights(self, moment: np.ndarray, load: np.ndarray):
         tb = self._tables
         i, fi = _bilinear(moment, tb.moment_grid)
         j, fj = _bilinear(load, tb.load_grid)
         n_load = tb.load_grid.shape[0]
         r00 = i * n_load + j
-        return moment, load, (r00, r00 + 1, r00 + n_load, r00 + n_load + 1), (
+        return (r00, r00 + 1, r00 + n_load, r00 + n_load + 1), (
             (1 - fi) * (1 - fj), (1 - fi) * fj, fi * (1 - fj), fi * fj)
 
     @staticmethod
@@ -797,13 +797,31 @@ class FingerModel:
             tip = _arc_xy(kappa, self.rig.sensor_length_m)
             moment, load = self.inputs(t)
         else:
-            moment, load, rows, w = self._grid_weights(t)
-            theta = self._interp(self._tables.theta_taps, rows, w)
-            curv = np.diff(theta, axis=1) / seg[None, :]
-            xy = self._tables.xy_nodes
-            p = self._tables.s_m.shape[0]
-            tip = self._interp(xy[:, 2 * (p - 1) :], rows, w)
+            moment, load = self.inputs(t)
+            eq = self.equilibrium(moment_nm=moment, load_n=load)
+            curv, tip = eq["curvature_per_m"], eq["tip_xy_m"]
         return {"t_device_s": t.copy(), "curvature_per_m": curv, "tip_xy_m": tip, "moment_nm": moment, "load_n": load}
+
+    def equilibrium(self, *, moment_nm, load_n) -> dict:
+        """Free finger's shape under given inputs, from the precomputed table.
+
+        ``moment_nm`` and ``load_n`` broadcast to shape (N,); values outside
+        the table (``bend_range_rad``, ``load_max_n``) are clipped to it.
+
+        Returns
+        -------
+        dict
+            ``curvature_per_m`` (N, S): mean curvature of each segment;
+            ``tip_xy_m`` (N, 2): end of the sensor.
+        """
+        moment, load = np.broadcast_arrays(np.atleast_1d(np.asarray(moment_nm, dtype=np.float64)),
+                                           np.atleast_1d(np.asarray(load_n, dtype=np.float64)))
+        rows, w = self._grid_weights(moment, load)
+        theta = self._interp(self._tables.theta_taps, rows, w)
+        xy = self._tables.xy_nodes
+        p = self._tables.s_m.shape[0]
+        tip = self._interp(xy[:, 2 * (p - 1) :], rows, w)
+        return {"curvature_per_m": np.diff(theta, axis=1) / self.rig.segment_lengths_m[None, :], "tip_xy_m": tip}
 
     def shape(self, t_s) -> tuple[np.ndarray, np.ndarray]:
         """Fine-grid shape of the sensor at device times ``t_s``.
@@ -821,7 +839,7 @@ class FingerModel:
             kappa = self._hold_kappa(t)
             xy = _arc_xy(kappa[:, None], s[None, :])
         else:
-            _, _, rows, w = self._grid_weights(t)
+            rows, w = self._grid_weights(*self.inputs(t))
             xy = self._interp(self._tables.xy_nodes, rows, w).reshape(t.shape[0], s.shape[0], 2)
         return s.copy(), xy
 
@@ -878,7 +896,7 @@ class FingerModel:
         if self.hold is not None:
             dr = self._response(self._hold_kappa(t)[:, None])
         else:
-            _, _, rows, w = self._grid_weights(t)
+            rows, w = self._grid_weights(*self.inputs(t))
             dr = self._interp(self._dr_table, rows, w)
         r = self._r0 * np.maximum(1.0 + dr, 0.05)
         if with_faults and self.faults.short_taps is not None:

@@ -48,7 +48,7 @@
 #define APP_CHANNELS 6u
 #define APP_ADC_BITS 12u
 #define APP_DEFAULT_RATE_MILLIHZ 500000u  /* 500 Hz */
-#define APP_MAX_RATE_MILLIHZ 5000000u     /* 5 kHz: what the ADC and the line can carry */
+#define APP_MAX_RATE_MILLIHZ 5000000u     /* 5 kHz: this example's limit; set yours from ADC and baud */
 #define APP_TX_QUEUE_BYTES 1024u          /* about 40 six-channel frames */
 #define APP_TEXT_MAX 128u                 /* longest hello, reply or note we build */
 #define APP_IDLE_POLL_US 1000u            /* how long to doze with nothing scheduled */

@@ -505,3 +505,26 @@ def test_demo_fractional_rate_does_not_drift(c_build):
     # 999 periods of 10^9 / 333333 us = 2997002.997 us: no accumulated rounding
     assert abs(span - 999 * 1e9 / 333333) < 1.0
     assert set((np.diff(s["t_us"]) % 2**32).tolist()) <= {3000, 3001}
+
+
+def test_protocol_document_example(c_build):
+    # the worked example in PROTOCOL.md must be what both encoders produce
+    doc = (C_DIR.parent / "PROTOCOL.md").read_text(encoding="utf-8")
+    wire = "07 01 01 02 40 42 0f 05 02 04 b8 0b 04 08 4c 04 04 01 16 99 00"
+    raw = "01 01 02 40 42 0f 00 02 04 b8 0b 00 08 4c 04 00 01 16 99"
+    assert wire in doc and raw in doc
+    pkt = fp.Samples(seq=513, t_us=1_000_000, status=2, codes=(3000, 2048, 1100, 256))
+    assert _c_frames(c_build["selftest"], [_spec(pkt)]) == [bytes.fromhex(wire)]
+    assert fp.encode_packet(pkt) == bytes.fromhex(wire)
+    assert cobs_ref.decode(bytes.fromhex(wire)[:-1]) == bytes.fromhex(raw)
+    reply = "0f 03 4f 4b 20 52 41 54 45 20 35 30 30 7a 2f 00"
+    assert reply in doc
+    assert _c_frames(c_build["selftest"], [_spec(fp.Reply("OK RATE 500"))]) == [bytes.fromhex(reply)]
+
+
+def test_demo_refuses_rate_out_of_range(c_build):
+    # the example board allows at most 5 kHz; a refused RATE leaves the rate alone
+    s, controls, dec = _demo(c_build, 20, 6000)
+    replies = [c.text for c in controls if isinstance(c, fp.Reply)]
+    assert replies == ["ERR bad rate", "ERR rate out of range", "OK START", "OK STOP"]
+    assert np.all(np.diff(s["t_us"]) % 2**32 == 2000)  # still the boot rate, 500 Hz
