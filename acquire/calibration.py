@@ -448,7 +448,7 @@ def _pad(rows: list[list[float]]) -> np.ndarray:
     return out
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, kw_only=True)
 class Calibration:
     """Resistance-to-curvature law of every segment, with where it came from.
 
@@ -685,6 +685,9 @@ class Calibration:
                 raise CalibrationError(f"{source}: model.segments and r0_ohm differ in length")
             if not all(math.isfinite(v) and v > 0 for v in r0):
                 raise CalibrationError(f"{source}: r0_ohm must be positive numbers")
+            for k, s in enumerate(segs):
+                if not s["positive"] or not s["negative"]:
+                    raise CalibrationError(f"{source}: model.segments[{k}] needs positive and negative coefficients")
             report = d.get("fit_report")
             return cls(
                 r0_ohm=np.array(r0),

@@ -219,8 +219,7 @@ class Pipeline:
         codes = np.asarray(codes)
         if codes.ndim != 2 or codes.shape[1] != self.rig.n_channels:
             raise ValueError(f"expected codes of shape (N, {self.rig.n_channels}), got {codes.shape}")
-        resistance = self.readout.resistance_ohm(codes)
-        check = self.readout.chain_check(codes)
+        resistance, check = self.readout.read(codes)
         to_filter = np.where(check.unusable, np.nan, resistance) if self.mask_faults else resistance
         return resistance, check, to_filter
 

@@ -109,11 +109,20 @@ class Readout:
         """(N, S) float64 tap voltages as fractions of the ADC reference, ``code / 2**adc_bits``."""
         return self.tap_codes(codes) * (1.0 / (1 << self.adc_bits))
 
+    @classmethod
+    def from_rig(cls, rig: Rig, *, adc_bits: int) -> "Readout":  # pragma: no cover - abstract
+        """Build from the rig file's ``[readout]`` table and the device's ADC resolution."""
+        raise NotImplementedError
+
     def resistance_ohm(self, codes: np.ndarray) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
 
     def chain_check(self, codes: np.ndarray) -> ChainCheck:  # pragma: no cover - abstract
         raise NotImplementedError
+
+    def read(self, codes: np.ndarray) -> tuple[np.ndarray, ChainCheck]:
+        """Both :meth:`resistance_ohm` and :meth:`chain_check` (subclasses may share work)."""
+        return self.resistance_ohm(codes), self.chain_check(codes)
 
     def _saturated(self, tap: np.ndarray) -> np.ndarray:
         return (tap <= 0) | (tap >= self.full_scale_code)
@@ -189,27 +198,29 @@ class DividerReadout(Readout):
             Out-of-order taps give zero or negative values, as measured;
             :meth:`chain_check` flags them.
         """
-        tap = self.tap_codes(codes)
-        v = tap * (1.0 / (1 << self.adc_bits))
-        current = 1.0 - v[:, 0]
-        measurable = (tap[:, 0] < self.full_scale_code) & (tap <= self.full_scale_code).all(axis=1)
-        # division only where the current is measurable: no warnings, no inf
-        scale = np.full(current.shape, np.nan)
-        np.divide(self.r_ref_ohm, current, out=scale, where=measurable)
-        return self._drops(v) * scale[:, None]
+        return self.read(codes)[0]
 
     def chain_check(self, codes: np.ndarray) -> ChainCheck:
         """Per-frame and per-segment wiring flags of N frames (see :class:`ChainCheck`)."""
+        return self.read(codes)[1]
+
+    def read(self, codes: np.ndarray) -> tuple[np.ndarray, ChainCheck]:
+        """Resistances (as :meth:`resistance_ohm`) and wiring flags, computed once."""
         tap = self.tap_codes(codes)
         v = tap * (1.0 / (1 << self.adc_bits))
         drops = self._drops(v)
-        r = self.resistance_ohm(codes)
-        return ChainCheck(
+        current = 1.0 - v[:, 0]
+        measurable = (tap[:, 0] < self.full_scale_code) & (tap <= self.full_scale_code).all(axis=1)
+        scale = np.full(current.shape, np.nan)  # divide only where measurable: no warning, no inf
+        np.divide(self.r_ref_ohm, current, out=scale, where=measurable)
+        r = drops * scale[:, None]
+        check = ChainCheck(
             order_violated=drops <= 0.0,
-            top_at_full_scale=(1.0 - v[:, 0]) <= self.top_margin,
+            top_at_full_scale=current <= self.top_margin,
             out_of_range=self._out_of_range(r),
             saturated=self._saturated(tap),
         )
+        return r, check
 
 
 READOUTS: dict[str, type[Readout]] = {"divider": DividerReadout}

@@ -43,6 +43,7 @@ __all__ = ["Reconstructor", "body_outline", "METHODS", "TIP_MODES"]
 METHODS = ("smooth", "arcs")
 TIP_MODES = ("rigid", "continue")
 _GAUSS_NODES = 3
+_BLOCK_VALUES = 1 << 16  # heading values per internal block of frames
 
 
 class Reconstructor:
@@ -216,20 +217,27 @@ class Reconstructor:
         Returns
         -------
         ndarray of float64, shape (N, P, 2)
-            x, y in the base frame, m, at arc lengths :attr:`s_m`. A frame
-            with a NaN curvature is NaN from that segment's influence onward
-            (in practice: all of it).
+            x, y in the base frame, m, at arc lengths :attr:`s_m`. A NaN
+            curvature makes its whole frame NaN.
         """
         m = np.asarray(curvature_per_m, dtype=np.float64)
         if m.ndim != 2 or m.shape[1] != self.n_segments:
             raise ValueError(f"expected shape (N, {self.n_segments}), got {m.shape}")
         n = m.shape[0]
         out = np.empty((n, self.n_points, 2))
+        # blocks of frames small enough to stay in cache (large N is memory-bound otherwise)
+        step = max(1, _BLOCK_VALUES // (self.n_points * _GAUSS_NODES))
+        for i in range(0, n, step):
+            self._shape_block(m[i:i + step], out[i:i + step])
+        return out
+
+    def _shape_block(self, m: np.ndarray, out: np.ndarray) -> None:
+        n = m.shape[0]
         out[:, 0, :] = 0.0
         if self.method == "smooth":
             th = (m @ self._theta_nodes).reshape(n, self.n_points - 1, _GAUSS_NODES)
-            dx = (np.cos(th) * self._weights).sum(axis=2)
-            dy = (np.sin(th) * self._weights).sum(axis=2)
+            dx = np.einsum("npg,pg->np", np.cos(th), self._weights)
+            dy = np.einsum("npg,pg->np", np.sin(th), self._weights)
         else:
             th = m @ self._theta_pts_t  # (N, P)
             dth = np.diff(th, axis=1)
@@ -239,7 +247,6 @@ class Reconstructor:
             dy = chord * np.sin(mid)
         np.cumsum(dx, axis=1, out=out[:, 1:, 0])
         np.cumsum(dy, axis=1, out=out[:, 1:, 1])
-        return out
 
 
 def body_outline(xy: np.ndarray, *, thickness_above_m: float, thickness_below_m: float) -> np.ndarray:

@@ -200,9 +200,8 @@ class Recorder:
         next_flush = time.monotonic() + self.flush_interval_s
         try:
             while True:
-                stopping = self._stop.is_set()
-                if not stopping:
-                    self._cursor.wait(timeout_s=min(0.05, self.flush_interval_s))
+                # sleep until the next flush: frames wait in the ring meanwhile
+                stopping = self._stop.wait(max(0.0, next_flush - time.monotonic()))
                 now = time.monotonic()
                 if now >= next_flush or stopping:
                     self._write_pending(f)

@@ -1,6 +1,9 @@
 """Host-to-device command lines (ASCII, ending in ``\\n``) and reply parsing."""
 from __future__ import annotations
 
+import math
+import re
+
 __all__ = [
     "COMMANDS",
     "cmd_hello",
@@ -10,6 +13,8 @@ __all__ = [
     "parse_command",
     "CommandError",
 ]
+
+_DECIMAL = re.compile(r"^[0-9]+(\.[0-9]+)?$")
 
 #: every command word of protocol version 1
 COMMANDS = ("HELLO?", "START", "STOP", "RATE")
@@ -35,10 +40,13 @@ def cmd_stop() -> bytes:
 
 
 def cmd_rate(rate_hz: float) -> bytes:
-    """Set the sample rate in Hz (an integer is sent when the value is whole)."""
-    if not rate_hz > 0:
-        raise ValueError(f"rate must be positive, got {rate_hz!r}")
-    text = f"{int(rate_hz)}" if float(rate_hz).is_integer() else f"{rate_hz:g}"
+    """Set the sample rate in Hz, sent as a plain decimal with at most 3 decimals."""
+    rate = float(rate_hz)
+    if not (rate > 0 and math.isfinite(rate)):
+        raise ValueError(f"rate must be a positive finite number, got {rate_hz!r}")
+    text = f"{rate:.3f}".rstrip("0").rstrip(".")
+    if text == "0":
+        raise ValueError(f"rate {rate_hz!r} rounds to 0 at millihertz resolution")
     return f"RATE {text}\n".encode("ascii")
 
 
@@ -62,10 +70,10 @@ def parse_command(line: bytes) -> tuple[str, float | None]:
             raise CommandError(f"{word} takes no argument")
         return word, None
     if word == "RATE":
-        try:
-            rate = float(arg)
-        except ValueError:
-            raise CommandError(f"bad rate {arg!r}") from None
+        # plain decimals only, as the C parser reads them: no exponents, inf or underscores
+        if not _DECIMAL.match(arg):
+            raise CommandError(f"bad rate {arg!r}")
+        rate = float(arg)
         if not rate > 0:
             raise CommandError(f"bad rate {arg!r}")
         return word, rate

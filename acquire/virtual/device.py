@@ -592,46 +592,56 @@ class VirtualFinger:
         if f.drop_rate > 0:
             fate[self._rng.random(n) < f.drop_rate] = _FATE_DROP
         keep = np.flatnonzero(fate == 0)
-        room = max(0, self.tx_buffer_bytes - len(self._tx)) // self._pkt_len
-        overflow_now = keep.shape[0] > room
-        if overflow_now:
-            fate[keep[room:]] = _FATE_OVERFLOW
-            keep = keep[:room]
-        if keep.size:
-            if self._overflow_pending:
-                status[keep[0]] |= fp.STATUS_TX_OVERFLOW
-                self._overflow_pending = False
-            wire = fp.encode_samples_bulk(
-                seq=frame[keep], t_us=np.rint(t[keep] * 1e6).astype(np.int64),
-                status=status[keep], codes=codes[keep],
-            )
-            n_corrupt = 0
-            if f.corrupt_rate > 0:
-                hit = np.flatnonzero(self._rng.random(keep.size) < f.corrupt_rate)
-                if hit.size:
-                    buf = np.frombuffer(bytearray(wire), dtype=np.uint8).reshape(keep.size, self._pkt_len)
-                    for row in hit.tolist():
-                        k = int(self._rng.integers(1, 4))
-                        pos = self._rng.integers(0, self._pkt_len, k)
-                        buf[row, pos] ^= self._rng.integers(1, 256, k).astype(np.uint8)
-                    wire = buf.tobytes()
-                    fate[keep[hit]] = _FATE_CORRUPT
-                    n_corrupt = hit.size
-            self._tx += wire
-        else:
-            n_corrupt = 0
-        if overflow_now:
-            self._overflow_pending = True
+        sent, n_corrupt = self._queue(keep, frame, t, status, codes, fate)
         if self._truth is not None:
             self._truth.append(self._boot, frame, t, seg.model, codes, status, fate)
         self._next_frame += n
         self._seg_done += n
         self._count(
-            frames_generated=n, frames_sent=int(keep.size),
+            frames_generated=n, frames_sent=sent,
             frames_dropped_tx=int(np.count_nonzero(fate == _FATE_OVERFLOW)),
             packets_dropped=int(np.count_nonzero(fate == _FATE_DROP)),
             packets_corrupted=int(n_corrupt), frames_late=int(np.count_nonzero(status & fp.STATUS_LATE)),
         )
+
+    def _queue(self, keep, frame, t, status, codes, fate) -> tuple[int, int]:
+        """Put packets ``keep`` into the transmit buffer, draining it into the
+        pty between pieces as a UART drains while the next sample is taken.
+        What finds no room is dropped (fate 3) and flags the next packet sent.
+        Returns (packets queued, packets corrupted)."""
+        f = self.faults
+        pos = 0
+        n_corrupt = 0
+        while pos < keep.size:
+            self._flush_tx()
+            room = max(0, self.tx_buffer_bytes - len(self._tx)) // self._pkt_len
+            if room == 0:
+                break
+            part = keep[pos : pos + room]
+            pos += part.size
+            if self._overflow_pending:
+                status[part[0]] |= fp.STATUS_TX_OVERFLOW
+                self._overflow_pending = False
+            wire = fp.encode_samples_bulk(
+                seq=frame[part], t_us=np.rint(t[part] * 1e6).astype(np.int64),
+                status=status[part], codes=codes[part],
+            )
+            if f.corrupt_rate > 0:
+                hit = np.flatnonzero(self._rng.random(part.size) < f.corrupt_rate)
+                if hit.size:
+                    buf = np.frombuffer(bytearray(wire), dtype=np.uint8).reshape(part.size, self._pkt_len)
+                    for row in hit.tolist():
+                        k = int(self._rng.integers(1, 4))
+                        where = self._rng.integers(0, self._pkt_len, k)
+                        buf[row, where] ^= self._rng.integers(1, 256, k).astype(np.uint8)
+                    wire = buf.tobytes()
+                    fate[part[hit]] = _FATE_CORRUPT
+                    n_corrupt += hit.size
+            self._tx += wire
+        if pos < keep.size:
+            fate[keep[pos:]] = _FATE_OVERFLOW
+            self._overflow_pending = True
+        return pos, n_corrupt
 
     def _send_control(self, packet) -> None:
         # replies and hellos are always queued: they are small and rare

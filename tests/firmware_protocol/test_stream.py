@@ -114,3 +114,26 @@ def test_arbitrary_bytes_never_crash(junk, chunk):
     for i in range(0, len(data), chunk):
         got += dec.feed(data[i : i + chunk])
     assert _samples(got)[-5:] == expect
+
+
+def test_overlong_frame_same_for_any_chunking():
+    # a frame longer than any legal packet counts once as "cobs", whether it comes whole or in pieces
+    wire, expect = _stream(m=5)
+    junk = b"\x05" * 2000 + b"\x00"
+    for chunk in (1, 13, 600, len(junk) + len(wire)):
+        dec = StreamDecoder()
+        data = junk + wire
+        got = []
+        for i in range(0, len(data), chunk):
+            got += dec.feed(data[i : i + chunk])
+        assert _samples(got) == expect, chunk
+        assert dec.drops["cobs"] == 1, (chunk, dec.drops)
+
+
+def test_noise_is_fast_enough_and_invents_nothing():
+    # 200 kB of random noise: no packet appears (CRC-16 gate), the decoder keeps going
+    rng = np.random.default_rng(9)
+    noise = rng.integers(0, 256, 200_000, dtype=np.uint8).tobytes()
+    items, drops = decode_stream(noise + b"\x00")
+    assert not any(isinstance(i, SampleBlock) for i in items)
+    assert sum(drops.values()) > 100
