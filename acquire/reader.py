@@ -145,6 +145,7 @@ class SerialReader:
         self._last_t_device_s = 0.0
         self._last_frame_host_s: float | None = None
         self._resync_pending = False
+        self._after_hello: list = []
         self.error: str | None = None
 
     # -- public API (any thread) ------------------------------------------------
@@ -200,8 +201,10 @@ class SerialReader:
         self._event("hello", f"{info}")
         if self.rate_hz_request is not None:
             self._write(cmd_rate(self.rate_hz_request))
-            self.hello = dict(info, rate_hz=self.rate_hz_request)
+            self.hello = dict(self.hello, rate_hz=self.rate_hz_request)
         self._write(cmd_start())
+        self._handle_items(self._after_hello, time.monotonic())
+        self._after_hello = []
         self._connected.set()
         self._thread = threading.Thread(target=self._run, name=f"reader {self.port}", daemon=True)
         self._thread.start()
@@ -269,8 +272,11 @@ class SerialReader:
                 data = ser.read(max(1, ser.in_waiting))
             except (serial.SerialException, OSError) as exc:
                 raise PortError(f"port {self.port}: lost while waiting for hello ({exc})") from None
-            for item in self._decoder.feed(data):
+            items = self._decoder.feed(data)
+            for k, item in enumerate(items):
                 if isinstance(item, Hello):
+                    # what came after the hello in the same read is handled once the ring exists
+                    self._after_hello = items[k + 1 :]
                     return dict(item.info)
             if time.monotonic() > next_ask:  # a hello may have been cut by a reset
                 ser.write(cmd_hello())
@@ -322,7 +328,10 @@ class SerialReader:
 
     def _handle(self, data: bytes, now: float) -> None:
         self.counters["bytes"] += len(data)
-        for item in self._decoder.feed(data):
+        self._handle_items(self._decoder.feed(data), now)
+
+    def _handle_items(self, items: list, now: float) -> None:
+        for item in items:
             if isinstance(item, SampleBlock):
                 self._push_samples(item, now)
             elif isinstance(item, Hello):
@@ -336,6 +345,14 @@ class SerialReader:
                     self._event("error", self.error)
                 self._resync_pending = True
             elif isinstance(item, Reply):
+                words = item.text.split()
+                if words[:2] == ["OK", "RATE"] and len(words) == 3:
+                    # the device runs at a new rate (asked by us or by someone before us)
+                    try:
+                        self.hello = dict(self.hello, rate_hz=float(words[2]))
+                        self._event("rate", item.text)
+                    except ValueError:
+                        pass
                 if item.text.startswith("OK START") or item.text.startswith("OK STOP"):
                     continue  # our own start/stop, answered
                 try:

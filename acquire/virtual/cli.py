@@ -10,6 +10,7 @@ import math
 import signal
 import sys
 import threading
+from pathlib import Path
 
 from ..errors import UserError
 from ..rig import load_rig
@@ -112,15 +113,24 @@ def build_virtual_finger(args):
             raise UserError(f"--hold: {exc}") from None
     faults = _faults_from(args)
     faults.check(rig, names=_FAULT_OPTIONS)
-    try:
-        return VirtualFinger(
-            rig=rig, rate_hz=rate, adc_bits=bits, seed=seed, faults=faults, hold=args.hold,
-            scenario=args.scenario, time_scale=scale, link_path=args.link, truth_path=args.truth,
-        )
-    except UserError as exc:
-        # the paths are the only values not checked above
-        option = "--truth" if args.truth and str(args.truth) in str(exc) else "--link"
-        raise UserError(f"{option}: {exc}") from None
+    _check_out_path(args.link, "--link", symlink=True)
+    _check_out_path(args.truth, "--truth", symlink=False)
+    return VirtualFinger(
+        rig=rig, rate_hz=rate, adc_bits=bits, seed=seed, faults=faults, hold=args.hold,
+        scenario=args.scenario, time_scale=scale, link_path=args.link, truth_path=args.truth,
+    )
+
+
+def _check_out_path(text, option: str, *, symlink: bool) -> None:
+    if text is None:
+        return
+    path = Path(text)
+    if not path.parent.is_dir():
+        raise UserError(f"{option} {path}: folder {path.parent} does not exist")
+    if symlink and path.exists() and not path.is_symlink():
+        raise UserError(f"{option} {path}: exists and is not a symlink; will not replace it")
+    if not symlink and path.is_dir():
+        raise UserError(f"{option} {path}: is a folder")
 
 
 def run_virtual_device(args) -> int:

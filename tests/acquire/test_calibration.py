@@ -38,10 +38,8 @@ def x_of(kappa):
     """Inverse of true_curvature (the root of the quadratic on the right side)."""
     kappa = np.asarray(kappa, dtype=np.float64)
     out = np.empty_like(kappa)
-    for side, (c1, c2), sel in (("p", POS, kappa >= 0), ("n", NEG, kappa < 0)):
-        k = kappa[sel]
-        disc = np.sqrt(c1 * c1 + 4 * c2 * k)
-        out[sel] = (-c1 + disc) / (2 * c2) if side == "p" else (-c1 + disc) / (2 * c2)
+    for (c1, c2), sel in ((POS, kappa >= 0), (NEG, kappa < 0)):
+        out[sel] = (-c1 + np.sqrt(c1 * c1 + 4 * c2 * kappa[sel])) / (2 * c2)
     return out
 
 
@@ -241,11 +239,16 @@ def test_one_sided_holds_borrow_slope_with_warning(rig):
 
 def test_unknown_segments_in_a_hold_are_ignored(rig):
     holds = synthetic_holds()
-    jig = np.array([100.0, 100.0, np.nan, np.nan, np.nan, np.nan])  # nonsense value, only used for 0-1
-    holds.append(Hold(jig, np.full((50, 6), 1.0)))
+    jig = np.array([35.0, 35.0, np.nan, np.nan, np.nan, np.nan])  # a jig that only defines segments 0-1
+    r = R0 * (1 + x_of(np.full(6, 35.0)))
+    r[2:] = 1.0  # whatever the undefined segments read must not matter
+    holds.append(Hold(jig, np.repeat(r[None, :], 50, axis=0)))
     cal, report = fit_calibration(holds, rig=rig)
-    assert report.segments[2].n_holds == 9 and report.segments[0].n_holds == 10
-    assert report.segments[0].curvature_max_per_m == 100.0
+    assert report.segments[0].n_holds == 10 and report.segments[0].n_frames == 9 * 200 + 50
+    assert report.segments[2].n_holds == 9 and report.segments[2].n_frames == 9 * 200
+    assert report.all_warnings == []
+    ref, _ = fit_calibration(synthetic_holds(), rig=rig)
+    np.testing.assert_array_equal(cal.positive[2], ref.positive[2])
 
 
 # ----------------------------------------------------------------------------- files, rig, tare

@@ -528,3 +528,70 @@ def test_demo_refuses_rate_out_of_range(c_build):
     replies = [c.text for c in controls if isinstance(c, fp.Reply)]
     assert replies == ["ERR bad rate", "ERR rate out of range", "OK START", "OK STOP"]
     assert np.all(np.diff(s["t_us"]) % 2**32 == 2000)  # still the boot rate, 500 Hz
+
+
+def test_demo_stream_through_pty_and_record(c_build, tmp_path):
+    """The C encoder's output through the host's whole path: pty -> `tapcurve record` -> HDF5.
+
+    A relay thread plays the demo board's byte stream into a real
+    pseudo-terminal once the host has asked for a hello; the recording must
+    hold the demo's samples, contiguous and unchanged.
+    """
+    import os
+    import select
+    import sys
+    import threading
+    import tty
+
+    import h5py
+
+    stream = _run(c_build["demo"], ["3000", "1000"], b"").stdout
+    want, _, _ = _demo(c_build, 3000, 1000)
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    port = os.ttyname(slave)
+    stop = threading.Event()
+
+    def relay():
+        asked = b""
+        while not stop.is_set() and b"HELLO?" not in asked:
+            if select.select([master], [], [], 0.1)[0]:
+                asked += os.read(master, 1024)
+        for i in range(0, len(stream), 4096):  # blocking writes: the pty paces the relay
+            if stop.is_set():
+                return
+            os.write(master, stream[i : i + 4096])
+        while not stop.is_set():  # keep reading host commands so the pty never fills
+            if select.select([master], [], [], 0.1)[0]:
+                os.read(master, 1024)
+
+    thread = threading.Thread(target=relay, daemon=True)
+    thread.start()
+    rig = tmp_path / "six.toml"
+    rig.write_text(
+        "[sensor]\nsegment_lengths_mm = [16, 16, 16, 16, 16, 16]\n"
+        "[readout]\nkind = 'divider'\nr_ref_ohm = 10000.0\n"
+        "channels = ['tap0', 'tap1', 'tap2', 'tap3', 'tap4', 'tap5']\n"
+    )
+    out = tmp_path / "c_demo.h5"
+    try:
+        res = subprocess.run(
+            [sys.executable, "-m", "acquire.cli", "record", "--port", port, "--rig", str(rig),
+             "--out", str(out), "--duration", "2", "--quiet"],
+            capture_output=True, text=True, timeout=60, cwd=Path(__file__).resolve().parents[2],
+        )
+    finally:
+        stop.set()
+        thread.join(5)
+        os.close(master)
+        os.close(slave)
+    assert res.returncode == 0, res.stderr
+    with h5py.File(out, "r") as f:
+        seq = f["raw/seq"][:]
+        adc = f["raw/adc"][:]
+        t = f["raw/t_device_s"][:]
+    assert seq.shape == (2000,) and (np.diff(seq) == 1).all()
+    assert seq[0] == want["seq"][0]
+    assert (adc == want["codes"][:2000]).all()
+    # the demo's clock wraps 0.3 s in: unwrapped time keeps 1 ms steps across it
+    assert np.allclose(np.diff(t), 1e-3)
