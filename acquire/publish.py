@@ -89,8 +89,9 @@ Threads
 caller's thread (the main thread). One publisher thread does everything else:
 it reads its own :class:`~acquire.frames.RingCursor`, runs its own
 :class:`~acquire.pipeline.Pipeline` when calibrated, encodes each frame's JSON
-once and fans it out to all clients with non-blocking sends. :meth:`stats` and
-:meth:`wait_for_clients` may be called from any thread.
+once and fans it out to all clients with non-blocking sends. :meth:`stats`,
+:meth:`wait_for_clients` and :meth:`wait_for_connections` may be called from
+any thread.
 """
 from __future__ import annotations
 
@@ -398,6 +399,12 @@ class ShapePublisher:
         """Block until at least ``count`` clients are connected (any thread); True if so."""
         with self._cond:
             return self._cond.wait_for(lambda: self._n_clients >= count, timeout=timeout_s)
+
+    def wait_for_connections(self, count: int, *, timeout_s: float) -> bool:
+        """Block until at least ``count`` connections have been accepted since :meth:`start`
+        (any thread); True if so."""
+        with self._cond:
+            return self._cond.wait_for(lambda: self._connections >= count, timeout=timeout_s)
 
     def stats(self) -> dict:
         """Snapshot (any thread): ``clients`` (list of dicts with ``peer``, ``sent``,

@@ -82,7 +82,8 @@ class VirtualFinger:
     tx_buffer_bytes : int
         Transmit buffer; whole sample packets that do not fit are dropped.
     tick_s : float
-        Generation period while streaming (wall s).
+        Shortest generation period while streaming (wall s); at high frame
+        rates the period grows to hold about 256 frames, at most 20 ms.
 
     Thread use: the public methods may be called from any thread; the pty,
     the model evaluation and the truth file belong to the device thread.
@@ -478,7 +479,7 @@ class VirtualFinger:
                 continue
             if self._streaming and now >= next_tick:
                 self._generate()
-                next_tick = now + self.tick_s
+                next_tick = now + self._tick()
             self._flush_tx()
             if self._truth is not None:
                 self._truth.maybe_flush()
@@ -553,6 +554,11 @@ class VirtualFinger:
         with self._lock:
             self._segments[self._boot].append(self._seg)
 
+    def _tick(self) -> float:
+        """Generation period, wall s: chunks of about 256 frames keep the
+        per-chunk overhead small at high rates without much latency."""
+        return min(0.02, max(self.tick_s, 256.0 / (self._rate_hz * self.time_scale)))
+
     def _frames_due(self) -> int:
         """Frames of the current segment whose sample time has come."""
         elapsed = self._device_now() - self._seg.t0_s
@@ -586,7 +592,7 @@ class VirtualFinger:
         codes = seg.model.codes(t, frame_index=frame)
         # lateness of each sample in wall seconds; batching by tick is the normal
         lag = (self._device_now() - t) / self.time_scale
-        status = np.where(lag > 2.0 * self.tick_s + wall_period, fp.STATUS_LATE, 0).astype(np.uint8)
+        status = np.where(lag > 2.0 * self._tick() + wall_period, fp.STATUS_LATE, 0).astype(np.uint8)
         fate = np.zeros(n, dtype=np.uint8)
         f = self.faults
         if f.drop_rate > 0:
