@@ -570,7 +570,8 @@ class _GraspCycles:
         t = np.asarray(t_s, dtype=np.float64)
         with self._lock:
             t_max = float(t.max()) if t.size else 0.0
-            while self._end <= t_max:
+            # the cycle after t_max must exist too: its open level ends this one
+            while self._start[-1] <= t_max:
                 self._extend(max(64, self._start.shape[0]))
             starts = self._start
             cols = self._cols

@@ -22,7 +22,7 @@ import serial
 import firmware_protocol as fp
 from acquire.errors import UserError
 from acquire.rig import load_rig, parse_rig
-from acquire.virtual import Faults, VirtualFinger, add_virtual_device_arguments, run_virtual_device
+from acquire.virtual import Faults, VirtualFinger, add_virtual_device_arguments
 from acquire.virtual.cli import build_virtual_finger
 
 TIMEOUT_S = 5.0

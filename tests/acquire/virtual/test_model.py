@@ -218,6 +218,16 @@ def test_grasp_cycles_smooth_seeded_and_varied(rig):
     assert np.abs(other - c[::97]).max() > 1.0
 
 
+def test_long_runs_are_random_access(rig):
+    # Project rule (any chunking, same result): an hour in, the time course is
+    # the same whether the hour was evaluated before or not.
+    t = np.array([3599.9995, 3600.0, 7200.25])
+    fresh = FingerModel(rig=rig, seed=6).truth(t)["curvature_per_m"]
+    walked = FingerModel(rig=rig, seed=6)
+    walked.truth(np.arange(0.0, 3600.0, 0.5))
+    np.testing.assert_array_equal(walked.truth(t)["curvature_per_m"], fresh)
+
+
 def test_sweep_covers_both_bends(rig):
     # Common practice, no source: a sweep for moving-finger tests goes from a
     # slight negative bend to a strong closure.

@@ -1,0 +1,113 @@
+"""The serial reader against the virtual finger on a real pty: handshake, commands, a port that vanishes."""
+from __future__ import annotations
+
+import json
+import time
+
+import numpy as np
+import pytest
+
+from acquire.reader import SerialReader
+from acquire.recorder import Recorder
+from acquire.recording import open_recording
+from acquire.rig import load_rig
+from acquire.virtual import VirtualFinger
+
+
+def wait_for(predicate, timeout_s: float, what: str) -> None:
+    deadline = time.monotonic() + timeout_s
+    while not predicate():
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out waiting for {what}")
+        time.sleep(0.01)
+
+
+@pytest.fixture
+def finger(tmp_path):
+    vf = VirtualFinger(rate_hz=1000, link_path=tmp_path / "finger")
+    vf.start()
+    assert vf.wait_ready(timeout_s=10)
+    yield vf
+    vf.stop()
+
+
+def test_handshake_stream_and_rate(finger):
+    reader = SerialReader(port=finger.path)
+    reader.start()
+    try:
+        assert reader.n_channels == 6 and reader.rate_hz == 1000
+        cur = reader.ring.cursor(from_oldest=True)
+        wait_for(lambda: cur.pending >= 500, 10, "500 frames")
+        block = cur.read()
+        assert (np.diff(block.seq) == 1).all()
+        assert np.allclose(np.diff(block.t_device_s), 1e-3)
+        # a command and its reply; the reader follows the new rate
+        assert reader.send_command(b"RATE 500\n") == "OK RATE 500"
+        assert reader.rate_hz == 500
+        assert reader.send_command(b"JUMP\n").startswith("ERR")
+        before = cur.read()
+        wait_for(lambda: cur.pending >= 200, 10, "frames at 500 Hz")
+        after = cur.read()
+        assert np.allclose(np.diff(after.t_device_s), 2e-3)
+        assert reader.counters["frames_lost"] == 0
+    finally:
+        reader.stop()
+
+
+def _record(reader, path):
+    rig = load_rig(None)
+    rec = Recorder(
+        path=path,
+        ring=reader.ring,
+        rig_toml=rig.text,
+        device_hello=json.dumps(reader.hello),
+        channel_names=rig.channels,
+        events=reader.events,
+        counters=reader.all_counters,
+    )
+    rec.start()
+    return rec
+
+
+def test_device_reboots_recording_goes_on(finger, tmp_path):
+    reader = SerialReader(port=finger.path)
+    reader.start()
+    rec = _record(reader, tmp_path / "reboot.h5")
+    try:
+        wait_for(lambda: reader.counters["frames"] >= 500, 10, "frames before the outage")
+        finger.vanish(outage_s=0.5, reboot=True)  # cable pulled, board reset, plugged in again
+        wait_for(lambda: reader.counters["reboots"] == 1, 15, "the reader to see the reboot")
+        n_at_reboot = reader.counters["frames"]
+        wait_for(lambda: reader.counters["frames"] >= n_at_reboot + 500, 10, "frames after the reboot")
+    finally:
+        reader.stop()
+        rec.stop()
+    assert rec.error is None
+    with open_recording(tmp_path / "reboot.h5") as f:
+        block = f.frames()
+        kinds = [e[2] for e in f.events()]
+        reboot_row = next(e[1] for e in f.events() if e[2] == "reboot")
+    assert {"disconnected", "reconnected", "reboot"} <= set(kinds)
+    # one column, one meaning: seq and device time keep increasing through the new epoch
+    assert (np.diff(block.seq) == 1).all()
+    dt = np.diff(block.t_device_s)
+    assert (dt > 0).all()
+    jump = block.t_device_s[reboot_row] - block.t_device_s[reboot_row - 1]
+    assert 0.4 < jump < 3.0  # about the outage, measured on the host clock
+    assert reader.counters["frames_lost"] == 0
+
+
+def test_cable_pulled_device_kept_running(finger, tmp_path):
+    reader = SerialReader(port=finger.path)
+    reader.start()
+    try:
+        wait_for(lambda: reader.counters["frames"] >= 300, 10, "frames before the outage")
+        finger.vanish(outage_s=0.4, reboot=False)
+        wait_for(lambda: reader.counters["reconnects"] == 1, 15, "the reconnect")
+        n = reader.counters["frames"]
+        wait_for(lambda: reader.counters["frames"] >= n + 300, 10, "frames after the outage")
+    finally:
+        reader.stop()
+    assert reader.counters["reboots"] == 0
+    # the frames the board made while no one listened are counted as lost, about 0.4 s worth
+    assert 200 <= reader.counters["frames_lost"] <= 2000
