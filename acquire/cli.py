@@ -49,6 +49,12 @@ def _add_publish(p: argparse.ArgumentParser) -> None:
         action="store_true",
         help="allow a non-loopback --publish address (the stream has no authentication)",
     )
+    p.add_argument(
+        "--publish-rate-hz",
+        type=_positive_float("--publish-rate-hz"),
+        metavar="HZ",
+        help="at most HZ shape-stream messages per second to each client (default: every frame)",
+    )
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -111,7 +111,7 @@ import numpy as np
 from .errors import UserError
 from .frames import FrameBlock, FrameRing
 
-__all__ = ["ShapePublisher", "parse_address"]
+__all__ = ["ShapePublisher", "parse_address", "check_address"]
 
 _MAX_REQUEST_BYTES = 4096  # a request line longer than this is refused
 _SEND_CHUNK_BYTES = 256 * 1024  # most bytes joined into one send() call
@@ -156,6 +156,45 @@ def parse_address(text: str) -> tuple[str, int]:
     if not port_text.isdigit() or not 0 <= int(port_text) <= 65535:
         raise UserError(f"{where}: port must be a number 0..65535 (0 = any free port)")
     return host, int(port_text)
+
+
+def check_address(text: str, *, allow_remote: bool = False) -> tuple[int, tuple]:
+    """Parse and resolve ``HOST:PORT`` and refuse a non-loopback one without ``allow_remote``.
+
+    Cheap and without side effects (nothing is bound): the command line may
+    call it before opening a port or creating a recording.
+
+    Returns
+    -------
+    (family, sockaddr)
+        For :func:`socket.socket` and :meth:`socket.socket.bind`.
+
+    Raises
+    ------
+    UserError
+        Bad text, a host that does not resolve, or a non-loopback address
+        without ``allow_remote``; the message names the address.
+    """
+    shown = str(text).strip()
+    host, port = parse_address(shown)
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, proto=socket.IPPROTO_TCP)
+    except (socket.gaierror, UnicodeError) as exc:
+        raise UserError(f"publish address {shown}: host {host!r} not found ({exc})") from None
+    infos = [i for i in infos if i[0] in (socket.AF_INET, socket.AF_INET6)]
+    if not infos:
+        raise UserError(f"publish address {shown}: host {host!r} has no IP address")
+    family, _, _, _, sockaddr = infos[0]
+    if not allow_remote and not _is_loopback(sockaddr):
+        raise UserError(
+            f"publish address {shown}: not a loopback address; the stream has no "
+            "authentication, so it binds to 127.0.0.1 or [::1] unless --publish-allow-remote is given"
+        )
+    return family, sockaddr
+
+
+def _is_loopback(sockaddr) -> bool:
+    return ipaddress.ip_address(sockaddr[0].split("%")[0]).is_loopback
 
 
 def _format_address(host: str, port: int) -> str:
@@ -258,15 +297,8 @@ class ShapePublisher:
         announce: bool = True,
     ):
         self.address_text = str(address).strip()
-        host, port = parse_address(self.address_text)
-        self._family, self._sockaddr = self._resolve(host, port)
-        ip = ipaddress.ip_address(self._sockaddr[0].split("%")[0])
-        self.is_loopback = ip.is_loopback
-        if not self.is_loopback and not allow_remote:
-            raise UserError(
-                f"publish address {self.address_text}: not a loopback address; the stream has no "
-                "authentication, so it binds to 127.0.0.1 or [::1] unless --publish-allow-remote is given"
-            )
+        self._family, self._sockaddr = check_address(self.address_text, allow_remote=allow_remote)
+        self.is_loopback = _is_loopback(self._sockaddr)
         if max_rate_hz is not None and not (max_rate_hz > 0 and math.isfinite(max_rate_hz)):
             raise UserError(f"publish rate {max_rate_hz!r}: must be a positive number of Hz")
         if calibration is not None and rig is None:
@@ -430,17 +462,6 @@ class ShapePublisher:
             }
 
     # -- set-up helpers --------------------------------------------------------------------------
-    def _resolve(self, host: str, port: int):
-        try:
-            infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, proto=socket.IPPROTO_TCP)
-        except (socket.gaierror, UnicodeError) as exc:
-            raise UserError(f"publish address {self.address_text}: host {host!r} not found ({exc})") from None
-        infos = [i for i in infos if i[0] in (socket.AF_INET, socket.AF_INET6)]
-        if not infos:
-            raise UserError(f"publish address {self.address_text}: host {host!r} has no IP address")
-        family, _, _, _, sockaddr = infos[0]
-        return family, sockaddr
-
     @staticmethod
     def _bind_reason(exc: OSError) -> str:
         if exc.errno == errno.EADDRINUSE:

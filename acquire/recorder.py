@@ -11,6 +11,7 @@ import fcntl
 import math
 import os
 import queue
+import resource
 import threading
 import time
 from pathlib import Path
@@ -113,6 +114,9 @@ class Recorder:
         self._t0_host = 0.0
         self._finished = threading.Event()
         self._lock_fd: int | None = None
+        self._reserve_bytes: int | None = None
+        self._clean_stop = False
+        self._frame_bytes = 2 * ring.n_channels + 8 + 8 + 8 + 1
 
     # -- control (any thread) ---------------------------------------------------------
     def start(self) -> None:
@@ -210,12 +214,18 @@ class Recorder:
                     next_flush = now + self.flush_interval_s
                 if stopping:
                     break
+        except _NoRoom as exc:
+            self._clean_stop = True  # nothing failed: the file can be closed normally
+            self.error = (
+                f"recording to {self.path} stopped: {exc}; the file holds the "
+                f"{self.frames_written} frames before that"
+            )
         except Exception as exc:  # disk full, file removed, I/O error: stop recording only
             text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
             self.error = f"recording to {self.path} stopped: {text}"
         finally:
             try:
-                if self.error is None:
+                if self.error is None or self._clean_stop:
                     self._close_labels(f)
                 f.close()
             except Exception as exc:
@@ -231,7 +241,37 @@ class Recorder:
                 pass
             self._finished.set()
 
+    def _room_problem(self, f: h5py.File, pending_frames: int) -> str | None:
+        """Why the next flush might not fit (disk nearly full, file size limit), or None.
+
+        A write that fails half way can leave HDF5 metadata pointing past the
+        end of the file, so the recorder stops *before* that, with the file
+        closed cleanly. Room needed: twice the pending data plus one new chunk
+        for every growing dataset.
+        """
+        if self._reserve_bytes is None:
+            reserve = 0
+            def add(_name, obj):
+                nonlocal reserve
+                if isinstance(obj, h5py.Dataset) and obj.chunks is not None:
+                    reserve += int(np.prod(obj.chunks)) * obj.dtype.itemsize
+            f.visititems(add)
+            self._reserve_bytes = reserve + (256 << 10)  # metadata growth
+        need = self._reserve_bytes + 2 * pending_frames * self._frame_bytes
+        size = self.path.stat().st_size
+        soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+        if soft != resource.RLIM_INFINITY and size + need > soft:
+            return f"the file size limit ({soft / 1e6:.2f} MB) is reached"
+        st = os.statvfs(self.path.parent)
+        free = st.f_bavail * st.f_frsize
+        if free < need + (8 << 20):
+            return f"the disk is nearly full ({free / 1e6:.1f} MB free)"
+        return None
+
     def _write_pending(self, f: h5py.File) -> None:
+        problem = self._room_problem(f, self._cursor.pending)
+        if problem is not None:
+            raise _NoRoom(problem)
         block = self._cursor.read()
         if self.max_frames is not None:
             room = self.max_frames - self.frames_written
@@ -304,6 +344,10 @@ class Recorder:
         g = f["counters"]
         _append(g["t_host_s"], np.array([time.monotonic() - self._t0_host]))
         _append(g["values"], row)
+
+
+class _NoRoom(Exception):
+    """Not enough room for the next flush."""
 
 
 def _clip_utf8(text: str, n_bytes: int) -> bytes:

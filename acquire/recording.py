@@ -95,14 +95,16 @@ def _chunk_rows(row_bytes: int) -> int:
     return int(max(64, min(65536, 65536 // max(1, row_bytes))))
 
 
-def _growing(group: h5py.Group, name: str, *, dtype, row_shape=(), units: str | None = None) -> h5py.Dataset:
+def _growing(
+    group: h5py.Group, name: str, *, dtype, row_shape=(), units: str | None = None, chunk_rows: int | None = None
+) -> h5py.Dataset:
     row_bytes = int(np.dtype(dtype).itemsize * int(np.prod(row_shape, dtype=np.int64)))
     ds = group.create_dataset(
         name,
         shape=(0, *row_shape),
         maxshape=(None, *row_shape),
         dtype=dtype,
-        chunks=(_chunk_rows(row_bytes), *row_shape),
+        chunks=(chunk_rows or _chunk_rows(row_bytes), *row_shape),
     )
     if units:
         ds.attrs["units"] = units
@@ -139,18 +141,18 @@ def create_layout(
     _growing(raw, "t_host_s", dtype=np.float64, units="s")
     _growing(raw, "status", dtype=np.uint8)
     labels = f.create_group("labels")
-    _growing(labels, "text", dtype=h5py.string_dtype("utf-8", LABEL_BYTES))
-    _growing(labels, "t_start_s", dtype=np.float64, units="s")
-    _growing(labels, "t_end_s", dtype=np.float64, units="s")
+    _growing(labels, "text", dtype=h5py.string_dtype("utf-8", LABEL_BYTES), chunk_rows=16)
+    _growing(labels, "t_start_s", dtype=np.float64, units="s", chunk_rows=16)
+    _growing(labels, "t_end_s", dtype=np.float64, units="s", chunk_rows=16)
     labels.attrs["time_base"] = "device time, /raw/t_device_s"
     events = f.create_group("events")
-    _growing(events, "t_host_s", dtype=np.float64, units="s")
-    _growing(events, "frame", dtype=np.int64)
-    _growing(events, "kind", dtype=h5py.string_dtype("utf-8", 16))
-    _growing(events, "text", dtype=h5py.string_dtype("utf-8", EVENT_TEXT_BYTES))
+    _growing(events, "t_host_s", dtype=np.float64, units="s", chunk_rows=32)
+    _growing(events, "frame", dtype=np.int64, chunk_rows=32)
+    _growing(events, "kind", dtype=h5py.string_dtype("utf-8", 16), chunk_rows=32)
+    _growing(events, "text", dtype=h5py.string_dtype("utf-8", EVENT_TEXT_BYTES), chunk_rows=32)
     counters = f.create_group("counters")
-    _growing(counters, "t_host_s", dtype=np.float64, units="s")
-    values = _growing(counters, "values", dtype=np.int64, row_shape=(len(COUNTER_NAMES),))
+    _growing(counters, "t_host_s", dtype=np.float64, units="s", chunk_rows=256)
+    values = _growing(counters, "values", dtype=np.int64, row_shape=(len(COUNTER_NAMES),), chunk_rows=256)
     values.attrs["names"] = json.dumps(list(COUNTER_NAMES))
     counters.attrs["about"] = "cumulative counters, one row per flush; the last row is the final count"
 

@@ -5,6 +5,12 @@ and while streaming generates frames in chunks (paced by the wall clock times
 ``time_scale``), encodes them in bulk and writes them through a bounded
 transmit buffer as a microcontroller would. The host opens ``path``, a
 symlink that stays put while the pty behind it comes and goes.
+
+The device keeps its own fd of the pty's slave side open, so the master
+never sees EIO while no host has the port open; bytes written then wait in
+the pty (and, once it is full, the transmit buffer drops whole packets as a
+board's would). The hello sent at boot usually lands before a host opens the
+port, and pyserial flushes input on open: a host asks ``HELLO?``.
 """
 from __future__ import annotations
 
@@ -195,7 +201,19 @@ class VirtualFinger:
 
     @property
     def counters(self) -> dict:
-        """A snapshot of the device's counters."""
+        """A snapshot of the device's counters.
+
+        ``frames_generated`` (made, all fates), ``frames_sent`` (queued for
+        the wire, corrupted ones included), ``frames_dropped_tx`` (no room in
+        the transmit buffer), ``packets_dropped`` (the drop_rate fault),
+        ``packets_corrupted``, ``frames_late`` (status bit 0 set: sampled
+        more than two generation periods plus one frame period behind the
+        wall clock), ``frames_skipped_late`` (over 1 s behind: never made, a
+        gap in seq), ``frames_lost_outage`` (sampled while the port was away
+        without a reboot), ``boots``, ``vanishes``, ``commands``,
+        ``command_errors``, ``hellos_sent``, ``bytes_sent``,
+        ``bytes_received``, ``cpu_s`` (device thread CPU time).
+        """
         with self._lock:
             return dict(self._counters)
 
@@ -206,8 +224,8 @@ class VirtualFinger:
 
     def start(self) -> "VirtualFinger":
         """Start the device thread; returns when the port exists."""
-        if self._thread is not None:
-            raise RuntimeError("already started")
+        if self._thread is not None or self._stop.is_set():
+            raise RuntimeError("a VirtualFinger starts once; make a new one")
         if self._link is None:
             self._own_dir = tempfile.mkdtemp(prefix="tapcurve-virtual-")
             self._link = Path(self._own_dir) / "finger"
@@ -244,7 +262,7 @@ class VirtualFinger:
     def __enter__(self) -> "VirtualFinger":
         return self.start()
 
-    def __exit__(self, *exc) -> None:
+    def __exit__(self, exc_type, exc, tb) -> None:
         self.stop()
 
     def set_hold(self, label: str | None) -> None:

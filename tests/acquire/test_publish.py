@@ -21,7 +21,7 @@ import pytest
 
 from acquire.errors import UserError
 from acquire.frames import FrameBlock, FrameRing
-from acquire.publish import ShapePublisher, parse_address
+from acquire.publish import ShapePublisher, check_address, parse_address
 from acquire.rig import load_rig
 
 REPO = Path(__file__).resolve().parents[2]
@@ -352,6 +352,23 @@ def test_remote_needs_the_flag_and_warns(ring, capfd):
         pub.stop()
 
 
+def test_check_address_binds_nothing():
+    family, sockaddr = check_address("localhost:0")
+    assert sockaddr[0] in ("127.0.0.1", "::1")
+    with pytest.raises(UserError, match=r"\[::\]:9000: not a loopback"):
+        check_address("[::]:9000")
+    assert check_address("[::]:9000", allow_remote=True)[1][0] == "::"
+
+
+def test_publish_rate_option_is_checked():
+    from acquire.cli import build_parser
+
+    base = ["record", "--port", "P", "--rig", "R", "--out", "F", "--publish", "127.0.0.1:0"]
+    with pytest.raises(UserError, match="--publish-rate-hz"):
+        build_parser().parse_args(base + ["--publish-rate-hz", "0"])
+    assert build_parser().parse_args(base + ["--publish-rate-hz", "50"]).publish_rate_hz == 50.0
+
+
 def test_loopback_ipv6(ring, publisher_factory):
     try:
         probe = socket.socket(socket.AF_INET6)
@@ -426,6 +443,15 @@ def test_cli_record_publishes(tmp_path):
         assert len(m["xy"]) == len(m["s_m"]) and m["dropped"] == 0
         assert out.exists()
         client.close()
+        # a non-loopback address without --publish-allow-remote: exit 2, one line naming it
+        bad = subprocess.run(
+            [sys.executable, "-m", "acquire.cli", "record", "--port", port, "--rig", str(RIG),
+             "--out", str(tmp_path / "bad.h5"), "--duration", "1", "--publish", "0.0.0.0:0"],
+            capture_output=True, text=True, cwd=REPO, env=env, timeout=60,
+        )
+        assert bad.returncode == 2, bad.stderr
+        assert len(bad.stderr.strip().splitlines()) == 1 and "Traceback" not in bad.stderr
+        assert "0.0.0.0:0" in bad.stderr and "loopback" in bad.stderr
     finally:
         for proc in (rec, dev):
             if proc is not None and proc.poll() is None:

@@ -156,12 +156,12 @@ def test_stream_is_contiguous_and_matches_truth(device, host):
     assert not (block.status & fp.STATUS_TX_OVERFLOW).any()
     truth = device.truth_for(1, seq)
     np.testing.assert_array_equal(block.codes, truth["codes"])
-    # the rate changes at once, and the seq goes on without a gap
     assert host.reply(b"RATE 500\n") == "OK RATE 500"
     more = host.frames(n=200)
-    gap = np.diff(more.t_us.astype(np.int64))
-    assert (gap[-100:] == 2000).all()
-    assert int(more.seq[0]) == int(seq[-1]) + 1 or int(more.seq[0]) > int(seq[-1])
+    # every frame after the reply is at the new rate, and seq goes on without a gap
+    np.testing.assert_array_equal(np.diff(more.t_us.astype(np.int64)), 2000)
+    everything = _join([i for i in host.items if isinstance(i, fp.SampleBlock)])
+    np.testing.assert_array_equal(np.diff(everything.seq.astype(np.int64)), 1)
     # after OK STOP no sample packet comes before the next answer
     assert host.reply(b"STOP\n") == "OK STOP"
     host.ask(b"HELLO?\n", lambda i: isinstance(i, fp.Hello))
@@ -191,6 +191,8 @@ def test_set_hold_changes_the_finger(device, host):
 
 
 def test_vanish_and_return_as_rebooted_device(device):
+    # The brief's reboot semantics (hello again, seq and clock from 0) and
+    # CONTRACTS.md section 1 (the host unwraps from whatever comes).
     host = Host(device.path)
     try:
         host.reply(b"START\n")
@@ -220,6 +222,7 @@ def test_vanish_and_return_as_rebooted_device(device):
 
 
 def test_vanish_without_reboot_leaves_a_seq_gap(device):
+    # CONTRACTS.md section 1: lost frames show as a jump in seq, never papered over.
     host = Host(device.path)
     host.reply(b"START\n")
     before = host.frames(n=100)
@@ -237,6 +240,7 @@ def test_vanish_without_reboot_leaves_a_seq_gap(device):
 
 
 def test_periodic_vanish():
+    # Common practice, no source: a flaky cable that comes back again and again.
     with VirtualFinger(faults=Faults(vanish_every_s=0.2, outage_s=0.05)) as dev:
         assert dev.wait_ready(boot=3, timeout_s=TIMEOUT_S)
         assert dev.counters["vanishes"] >= 2
@@ -331,6 +335,8 @@ def test_truth_file_matches_stream(tmp_path):
 
 
 def test_time_scale_speeds_up_frames_not_timestamps():
+    # t_us advances by 1e6 / rate per frame (CONTRACTS.md section 1) whatever
+    # the pacing; the wall-time bound is generous (2 shared cores).
     with VirtualFinger(time_scale=25.0) as dev:
         host = Host(dev.path)
         try:
@@ -396,6 +402,7 @@ def _parse(argv):
     ],
 )
 def test_cli_bad_values_name_the_option(argv, option):
+    # CONTRACTS.md section 5: bad input gives one line naming the value at fault.
     with pytest.raises(UserError, match=option) as info:
         build_virtual_finger(_parse(argv))
     assert "\n" not in str(info.value)
@@ -407,6 +414,7 @@ def test_cli_bad_link_folder(tmp_path):
 
 
 def test_cli_runs_until_sigterm(tmp_path):
+    # CONTRACTS.md section 5: prints its path, exits 0 on a clean stop (SIGTERM).
     link = tmp_path / "finger"
     script = (
         "import argparse, sys\n"
