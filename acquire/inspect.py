@@ -57,6 +57,7 @@ def inspect_summary(path) -> dict:
                 {"t_host_s": t, "frame": fr, "kind": k, "text": x} for t, fr, k, x in rec.events()
             ],
             "calibration": cal_info,
+            "clock": rec.clock(),
             "derived": rec.has_derived,
         }
 
@@ -106,6 +107,12 @@ def format_summary(s: dict) -> str:
             lines.append(f"    {e['t_host_s']:9.3f} s  frame {e['frame']:>8}  {e['kind']}: {e['text']}")
         if len(events) > 20:
             lines.append(f"    ... {len(events) - 20} more")
+    clock = s.get("clock")
+    if clock and clock["points"] >= 2 and clock["drift_ppm"] == clock["drift_ppm"]:
+        lines.append(
+            f"  clock       host - device drift {clock['drift_ppm']:+.1f} ppm, offset {clock['offset_s'] * 1e3:.2f} ms "
+            f"(fit over {clock['span_s']:.0f} s of device time, {clock['points']} points)"
+        )
     if s["calibration"]:
         cal = s["calibration"]
         lines.append(f"  calibration {cal.get('model', '?')} from {cal.get('created_utc', '?')}")

@@ -20,6 +20,7 @@ from typing import Callable
 import h5py
 import numpy as np
 
+from .clock import ClockFit
 from .errors import UserError
 from .frames import EventLog, FrameBlock, FrameRing
 from .recording import COUNTER_NAMES, LIBVER, check_label_text, create_derived, create_layout
@@ -115,6 +116,7 @@ class Recorder:
         self._finished = threading.Event()
         self._lock_fd: int | None = None
         self._reserve_bytes: int | None = None
+        self._clock = ClockFit()
         self._clean_stop = False
         self._frame_bytes = 2 * ring.n_channels + 8 + 8 + 8 + 1
 
@@ -293,6 +295,14 @@ class Recorder:
                 _append(f["derived"]["xy"], np.asarray(out.xy_m, dtype=np.float32))
             self.frames_written += n
             self._last_t_device_s = float(block.t_device_s[-1])
+            point = self._clock.add_batch(block.t_device_s, t_host)
+            if point is not None:
+                drift_ppm, offset_s = self._clock.estimate()
+                g = f["clock"]
+                _append(g["t_device_s"], np.array([point[0]]))
+                _append(g["offset_s"], np.array([point[1]]))
+                _append(g["fit_drift_ppm"], np.array([drift_ppm]))
+                _append(g["fit_offset_s"], np.array([offset_s]))
         self._write_labels(f)
         self._write_events(f)
         self._write_counters(f)

@@ -150,6 +150,15 @@ def create_layout(
     _growing(events, "frame", dtype=np.int64, chunk_rows=32)
     _growing(events, "kind", dtype=h5py.string_dtype("utf-8", 16), chunk_rows=32)
     _growing(events, "text", dtype=h5py.string_dtype("utf-8", EVENT_TEXT_BYTES), chunk_rows=32)
+    clock = f.create_group("clock")
+    clock.attrs["about"] = (
+        "device-host clock alignment, one row per flush: the lower envelope of t_host_s - t_device_s "
+        "and a running straight-line fit through it (acquire/clock.py); host = device + offset + drift * device"
+    )
+    _growing(clock, "t_device_s", dtype=np.float64, units="s", chunk_rows=256)
+    _growing(clock, "offset_s", dtype=np.float64, units="s", chunk_rows=256)
+    _growing(clock, "fit_drift_ppm", dtype=np.float64, units="ppm", chunk_rows=256)
+    _growing(clock, "fit_offset_s", dtype=np.float64, units="s", chunk_rows=256)
     counters = f.create_group("counters")
     _growing(counters, "t_host_s", dtype=np.float64, units="s", chunk_rows=256)
     values = _growing(counters, "values", dtype=np.int64, row_shape=(len(COUNTER_NAMES),), chunk_rows=256)
@@ -283,6 +292,20 @@ class Recording:
             (float(t), int(fr), _as_text(k), _as_text(x))
             for t, fr, k, x in zip(g["t_host_s"][:n], g["frame"][:n], g["kind"][:n], g["text"][:n])
         ]
+
+    def clock(self) -> dict | None:
+        """The last clock fit: ``drift_ppm``, ``offset_s``, ``points``, ``span_s``; None if absent."""
+        if "clock" not in self.file or self.file["clock"]["fit_drift_ppm"].shape[0] == 0:
+            return None
+        g = self.file["clock"]
+        n = g["fit_drift_ppm"].shape[0]
+        t = g["t_device_s"]
+        return {
+            "drift_ppm": float(g["fit_drift_ppm"][n - 1]),
+            "offset_s": float(g["fit_offset_s"][n - 1]),
+            "points": int(n),
+            "span_s": float(t[n - 1] - t[0]),
+        }
 
     def counters(self) -> dict[str, int]:
         """The last counters row (final counts of a closed recording)."""

@@ -1,0 +1,391 @@
+"""The plots of the sensor window: shape, per-segment bars, rolling traces, replay timeline.
+
+Every class here lives on the GUI thread and draws arrays it is handed (from
+an :class:`acquire.session.ViewSnapshot`); none reads a port or a file.
+Lengths arrive in metres; pyqtgraph's SI prefixes label the axes in mm.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pyqtgraph as pg
+from PyQt5 import QtCore, QtGui, QtWidgets
+
+from .theme import COLOURS, series_colour
+
+__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline"]
+
+
+def _pen(colour, width=1.0, style=QtCore.Qt.SolidLine):
+    pen = pg.mkPen(colour, width=width)
+    pen.setStyle(style)
+    pen.setCosmetic(True)
+    return pen
+
+
+class ShapeView(pg.PlotWidget):
+    """The sensor's curve to scale with equal axes, its body, taps, tip extension and tip trail.
+
+    Parameters
+    ----------
+    rig : acquire.rig.Rig
+        Body thicknesses and lengths.
+    reconstructor : acquire.reconstruct.Reconstructor
+        For the tap indices of the shape points.
+
+    Attributes
+    ----------
+    sensor_curve, tip_curve : pg.PlotDataItem
+        The sensor from tap 0 to its far end, and the unsensed tip beyond.
+    """
+
+    def __init__(self, *, rig, reconstructor, parent=None):
+        super().__init__(parent=parent)
+        self.rig = rig
+        self.tap_index = np.asarray(reconstructor.tap_index)
+        self.end_index = int(self.tap_index[-1])
+        self.has_tip = reconstructor.s_m.shape[0] > self.end_index + 1
+        self._thick_above = float(rig.thickness_above_m)
+        self._thick_below = float(rig.thickness_below_m)
+        plot = self.getPlotItem()
+        plot.setAspectLocked(True, ratio=1.0)
+        plot.showGrid(x=True, y=True, alpha=0.18)
+        plot.setLabel("bottom", "x", units="m")
+        plot.setLabel("left", "y", units="m")
+        plot.setMenuEnabled(False)
+        plot.hideButtons()
+        self.setBackground(COLOURS["background"])
+
+        # static: the clamp at the base, a faint straight reference
+        reach = rig.sensor_length_m + rig.tip_length_m
+        t_above, t_below = self._thick_above, self._thick_below
+        clamp_w = max(0.004, 0.08 * reach)
+        clamp = QtWidgets.QGraphicsRectItem(-clamp_w, -(t_below + 0.002), clamp_w, t_above + t_below + 0.004)
+        clamp.setPen(_pen(COLOURS["clamp"], 1))
+        clamp.setBrush(QtGui.QBrush(QtGui.QColor(COLOURS["clamp"]), QtCore.Qt.BDiagPattern))
+        plot.addItem(clamp)
+        ref = pg.PlotDataItem([0.0, reach], [0.0, 0.0], pen=_pen(COLOURS["grid"], 1, QtCore.Qt.DotLine))
+        plot.addItem(ref)
+
+        self.body_item = QtWidgets.QGraphicsPathItem()
+        fill = QtGui.QColor(*COLOURS["body_fill"])
+        self.body_item.setBrush(QtGui.QBrush(fill))
+        self.body_item.setPen(_pen(COLOURS["body_edge"], 1.2))
+        plot.addItem(self.body_item)
+        self.trail = pg.ScatterPlotItem(size=5, pen=None, antialias=True)
+        plot.addItem(self.trail)
+        self.tip_curve = pg.PlotDataItem(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
+        plot.addItem(self.tip_curve)
+        self.sensor_curve = pg.PlotDataItem(pen=_pen(COLOURS["sensor"], 3), antialias=True)
+        plot.addItem(self.sensor_curve)
+        self.taps = pg.ScatterPlotItem(
+            size=7, pen=_pen(COLOURS["tap_edge"], 1), brush=pg.mkBrush(COLOURS["tap"]), antialias=True
+        )
+        plot.addItem(self.taps)
+        self.tap_labels = []
+        for j in range(len(self.tap_index)):
+            item = pg.TextItem(str(j), color=COLOURS["muted"], anchor=(0.5, 1.3))
+            item.setFont(QtGui.QFont("Sans", 7))
+            plot.addItem(item)
+            self.tap_labels.append(item)
+        self._trail_brushes: dict[int, list] = {}
+        self.message = ""
+        self._set_range(reach, max(t_above, t_below))
+
+    def _set_range(self, reach: float, thick: float) -> None:
+        # a fixed frame that holds the finger however it bends (rolled up, or bent back)
+        self.getPlotItem().setRange(
+            xRange=(-0.3 * reach - thick, reach + thick),
+            yRange=(-0.7 * reach - thick, 0.75 * reach + thick),
+            padding=0.02,
+        )
+        self.getPlotItem().disableAutoRange()
+
+    def set_message(self, text: str) -> None:
+        """A line of state above the plot (no calibration, reading unusable ...)."""
+        if text != self.message:
+            self.message = text
+            self.getPlotItem().setTitle(
+                f"<span style='color:{COLOURS['caution']};font-size:10pt'>{text}</span>" if text else None
+            )
+
+    def _brushes(self, n: int) -> list:
+        b = self._trail_brushes.get(n)
+        if b is None:
+            r, g, bl = COLOURS["trail"]
+            alphas = np.linspace(15, 220, n) if n > 1 else [220]
+            b = [pg.mkBrush(r, g, bl, int(a)) for a in alphas]
+            self._trail_brushes[n] = b
+        return b
+
+    def show_shape(self, xy_m: np.ndarray | None, *, trail_xy_m: np.ndarray | None = None,
+                   outline_xy_m: np.ndarray | None = None) -> None:
+        """Draw one frame's shape (P, 2) m, or clear it with None."""
+        if xy_m is None or not np.isfinite(xy_m).all():
+            self.sensor_curve.setData([], [])
+            self.tip_curve.setData([], [])
+            self.taps.setData([], [])
+            self.body_item.setPath(QtGui.QPainterPath())
+            self.trail.setData([], [])
+            for item in self.tap_labels:
+                item.setVisible(False)
+            return
+        e = self.end_index
+        self.sensor_curve.setData(xy_m[: e + 1, 0], xy_m[: e + 1, 1])
+        if self.has_tip:
+            self.tip_curve.setData(xy_m[e:, 0], xy_m[e:, 1])
+        taps = xy_m[self.tap_index]
+        self.taps.setData(taps[:, 0], taps[:, 1])
+        for item, (x, y) in zip(self.tap_labels, taps):
+            item.setVisible(True)
+            item.setPos(float(x), float(y))
+        if outline_xy_m is not None and np.isfinite(outline_xy_m).all():
+            path = pg.arrayToQPath(outline_xy_m[:, 0], outline_xy_m[:, 1])
+            path.closeSubpath()
+            path.setFillRule(QtCore.Qt.WindingFill)  # the fold of a tight inner offset stays filled
+            self.body_item.setPath(path)
+        else:
+            self.body_item.setPath(QtGui.QPainterPath())
+        if trail_xy_m is not None and len(trail_xy_m):
+            t = trail_xy_m[np.isfinite(trail_xy_m).all(axis=1)]
+            self.trail.setData(t[:, 0], t[:, 1], brush=self._brushes(len(t)))
+        else:
+            self.trail.setData([], [])
+
+
+class SegmentBars(pg.PlotWidget):
+    """One horizontal bar per segment: curvature (1/m) or, without calibration, resistance (ohm)."""
+
+    def __init__(self, *, n_segments: int, parent=None):
+        super().__init__(parent=parent)
+        self.n = int(n_segments)
+        plot = self.getPlotItem()
+        plot.setMenuEnabled(False)
+        plot.hideButtons()
+        plot.setMouseEnabled(x=False, y=False)
+        plot.showGrid(x=True, y=False, alpha=0.18)
+        ticks = [(k, f"seg {k}") for k in range(self.n)]
+        plot.getAxis("left").setTicks([ticks])
+        plot.setYRange(-0.6, self.n - 0.4, padding=0)
+        self.setBackground(COLOURS["background"])
+        self.bars = pg.BarGraphItem(x0=np.zeros(self.n), y=np.arange(self.n), height=0.62,
+                                    width=np.zeros(self.n), brush=COLOURS["bend_pos"], pen=None)
+        plot.addItem(self.bars)
+        self.zero = pg.InfiniteLine(pos=0.0, angle=90, pen=_pen(COLOURS["muted"], 1))
+        plot.addItem(self.zero)
+        self.band = pg.LinearRegionItem(values=(0, 1), orientation="vertical", movable=False,
+                                        brush=pg.mkBrush(*COLOURS["healthy_band"]), pen=pg.mkPen(None))
+        self.band.setZValue(-10)
+        plot.addItem(self.band)
+        self._pos_brush = pg.mkBrush(COLOURS["bend_pos"])
+        self._neg_brush = pg.mkBrush(COLOURS["bend_neg"])
+        self._res_brushes = [pg.mkBrush(series_colour(k)) for k in range(self.n)]
+        self.mode = None
+        self.values = np.zeros(self.n)
+
+    def set_curvature_mode(self, lo_per_m: float, hi_per_m: float) -> None:
+        lo, hi = min(lo_per_m, 0.0), max(hi_per_m, 0.0)
+        span = max(hi - lo, 1.0)
+        self.getPlotItem().setXRange(lo - 0.08 * span, hi + 0.08 * span, padding=0)
+        self.getPlotItem().setLabel("bottom", "curvature", units="1/m")
+        self.band.setVisible(False)
+        self.zero.setVisible(True)
+        self.mode = "curvature"
+
+    def set_resistance_mode(self, lo_ohm: float, hi_ohm: float) -> None:
+        self.getPlotItem().setXRange(0.0, hi_ohm * 1.15, padding=0)
+        self.getPlotItem().setLabel("bottom", "resistance", units="Ω")
+        self.band.setRegion((lo_ohm, hi_ohm))
+        self.band.setVisible(True)
+        self.zero.setVisible(False)
+        self.mode = "resistance"
+
+    def set_values(self, values: np.ndarray) -> None:
+        v = np.nan_to_num(np.asarray(values, dtype=np.float64), nan=0.0)
+        self.values = v
+        if self.mode == "curvature":
+            brushes = [self._pos_brush if x >= 0 else self._neg_brush for x in v]
+        else:
+            brushes = self._res_brushes
+        self.bars.setOpts(width=v, brushes=brushes)
+
+
+class TraceView(pg.GraphicsLayoutWidget):
+    """Rolling traces: channels (ADC codes or segment resistance) above, segment curvature below.
+
+    The x axis is device time relative to the newest frame (s, 0 at the right).
+    """
+
+    def __init__(self, *, channel_names, n_segments: int, window_s: float, adc_bits: int, parent=None):
+        super().__init__(parent=parent)
+        self.setBackground(COLOURS["background"])
+        self.channel_names = list(channel_names)
+        self.n_seg = int(n_segments)
+        self.window_s = float(window_s)
+        self.full_scale = float((1 << int(adc_bits)) - 1)
+        self.top = self.addPlot(row=0, col=0)
+        self.bottom = self.addPlot(row=1, col=0)
+        for p in (self.top, self.bottom):
+            p.setMenuEnabled(False)
+            p.hideButtons()
+            p.showGrid(x=True, y=True, alpha=0.15)
+            p.setXRange(-self.window_s, 0.0, padding=0.01)
+            p.setMouseEnabled(x=False, y=True)
+            p.setClipToView(False)
+        self.bottom.setXLink(self.top)
+        self.bottom.setLabel("bottom", "time before the newest frame", units="s")
+        self.bottom.setLabel("left", "curvature", units="1/m")
+        self.top_legend = self.top.addLegend(offset=(4, 2), labelTextColor=COLOURS["muted"], colCount=8,
+                                             labelTextSize="7pt")
+        self.bottom_legend = self.bottom.addLegend(offset=(4, 2), labelTextColor=COLOURS["muted"], colCount=8,
+                                                   labelTextSize="7pt")
+        self.code_curves = [
+            self.top.plot(pen=_pen(series_colour(k), 1), name=f"{k}:{name}", skipFiniteCheck=True)
+            for k, name in enumerate(self.channel_names)
+        ]
+        self.res_curves = [self.top.plot(pen=_pen(series_colour(k), 1), name=f"seg {k}") for k in range(self.n_seg)]
+        self.curv_curves = [
+            self.bottom.plot(pen=_pen(series_colour(k), 1), name=f"seg {k}") for k in range(self.n_seg)
+        ]
+        self.no_cal_text = pg.TextItem("no calibration: curvature unavailable", color=COLOURS["caution"],
+                                       anchor=(0.5, 0.5))
+        self.bottom.addItem(self.no_cal_text, ignoreBounds=True)
+        self.no_cal_text.setPos(-self.window_s / 2, 0.0)
+        self.mode = None
+        self.set_mode("codes")
+        self.set_calibrated(False)
+
+    def set_mode(self, mode: str) -> None:
+        """``codes`` (ADC codes of every channel) or ``resistance`` (segment resistance)."""
+        if mode == self.mode:
+            return
+        self.mode = mode
+        codes = mode == "codes"
+        for c in self.code_curves:
+            c.setVisible(codes)
+        for c in self.res_curves:
+            c.setVisible(not codes)
+        # legend entries follow the visible set
+        self.top_legend.clear()
+        for c in self.code_curves if codes else self.res_curves:
+            self.top_legend.addItem(c, c.name())
+        if codes:
+            self.top.setLabel("left", "ADC code", units=None)
+            self.top.enableAutoRange(y=False)
+            self.top.setYRange(0, self.full_scale, padding=0.02)
+        else:
+            self.top.setLabel("left", "segment resistance", units="Ω")
+            self.top.enableAutoRange(y=True)
+
+    def set_calibrated(self, calibrated: bool) -> None:
+        for c in self.curv_curves:
+            c.setVisible(calibrated)
+        self.no_cal_text.setVisible(not calibrated)
+        self.bottom.enableAutoRange(y=calibrated)
+        if not calibrated:
+            self.bottom.setYRange(-1, 1, padding=0)
+            self.bottom_legend.setVisible(False)
+        else:
+            self.bottom_legend.setVisible(True)
+        self.calibrated = calibrated
+
+    def show_traces(self, snap) -> None:
+        if snap.trace_t_s.shape[0] == 0:
+            return
+        x = snap.trace_t_s - snap.t_device_s
+        if self.mode == "codes":
+            y = snap.trace_codes
+            for k, c in enumerate(self.code_curves):
+                c.setData(x, y[:, k])
+        else:
+            y = snap.trace_resistance_ohm
+            for k, c in enumerate(self.res_curves):
+                c.setData(x, y[:, k], connect="finite")
+        if self.calibrated and snap.trace_curvature_per_m is not None:
+            y = snap.trace_curvature_per_m
+            for k, c in enumerate(self.curv_curves):
+                c.setData(x, y[:, k], connect="finite")
+
+
+class Timeline(pg.PlotWidget):
+    """The recording's time axis: labelled intervals, the play head (drag or click to seek).
+
+    Signals
+    -------
+    seek_requested(float)
+        Device time the user picked, s.
+    """
+
+    seek_requested = QtCore.pyqtSignal(float)
+
+    def __init__(self, parent=None):
+        super().__init__(parent=parent)
+        self.setBackground(COLOURS["panel"])
+        plot = self.getPlotItem()
+        plot.setMenuEnabled(False)
+        plot.hideButtons()
+        plot.hideAxis("left")
+        plot.setMouseEnabled(x=False, y=False)
+        plot.setLabel("bottom", "recording time", units="s")
+        plot.setYRange(0, 1, padding=0)
+        self.setFixedHeight(74)
+        self.head = pg.InfiniteLine(pos=0.0, angle=90, movable=True, pen=_pen(COLOURS["playhead"], 2),
+                                    hoverPen=_pen(COLOURS["accent"], 3))
+        plot.addItem(self.head)
+        self.head.sigDragged.connect(self._dragged)
+        self.scene().sigMouseClicked.connect(self._clicked)
+        self._regions: list = []
+        self._label_key = None
+        self._extent = (0.0, 1.0)
+        self.dragging = False
+        self.head.sigPositionChangeFinished.connect(self._drag_done)
+
+    def set_extent(self, t0_s: float, t1_s: float) -> None:
+        if (t0_s, t1_s) != self._extent:
+            self._extent = (t0_s, t1_s)
+            self.getPlotItem().setXRange(t0_s, max(t1_s, t0_s + 1e-3), padding=0.01)
+            self.head.setBounds((t0_s, t1_s))
+
+    def set_labels(self, labels) -> None:
+        key = tuple((lab.text, lab.t_start_s, lab.t_end_s) for lab in labels)
+        if key == self._label_key:
+            return
+        self._label_key = key
+        plot = self.getPlotItem()
+        for item in self._regions:
+            plot.removeItem(item)
+        self._regions = []
+        for i, lab in enumerate(labels):
+            t1 = lab.t_end_s if math.isfinite(lab.t_end_s) else self._extent[1]
+            region = pg.LinearRegionItem(values=(lab.t_start_s, t1), movable=False,
+                                         brush=pg.mkBrush(*COLOURS["label_band"]), pen=_pen(COLOURS["sensor"], 1))
+            region.setZValue(-5)
+            text = pg.TextItem(lab.text, color=COLOURS["text"], anchor=(0, 0))
+            text.setFont(QtGui.QFont("Sans", 7))
+            text.setPos(lab.t_start_s, 0.95 - 0.3 * (i % 3))
+            plot.addItem(region)
+            plot.addItem(text)
+            self._regions += [region, text]
+
+    def set_head(self, t_s: float) -> None:
+        if not self.dragging:
+            self.head.blockSignals(True)
+            self.head.setValue(t_s)
+            self.head.blockSignals(False)
+
+    def _dragged(self, line) -> None:
+        self.dragging = True
+        self.seek_requested.emit(float(line.value()))
+
+    def _drag_done(self, line) -> None:
+        self.dragging = False
+        self.seek_requested.emit(float(line.value()))
+
+    def _clicked(self, event) -> None:
+        vb = self.getPlotItem().getViewBox()
+        if not vb.sceneBoundingRect().contains(event.scenePos()):
+            return
+        t = vb.mapSceneToView(event.scenePos()).x()
+        t0, t1 = self._extent
+        self.seek_requested.emit(float(min(max(t, t0), t1)))
