@@ -74,6 +74,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--headless", action="store_true", help="no window even if a display is available")
     p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds (headless use)")
     _add_publish(p)
+    p.add_argument("--label", help="with --record: mark the whole recording as one labelled interval")
+    from .session import add_virtual_source_arguments
+
+    add_virtual_source_arguments(p)
 
     p = sub.add_parser("record", help="headless recording to HDF5")
     p.add_argument("--port", required=True, help="serial port of the sensor board")
@@ -108,12 +112,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file", metavar="FILE")
     p.add_argument("--calibration")
     p.add_argument("--follow", action="store_true", help="keep up with a file that is still being recorded")
+    p.add_argument("--speed", type=_positive_float("--speed"), default=1.0, help="playback speed, 0.1 .. 20 (default 1)")
+    p.add_argument("--paused", action="store_true", help="open at the first frame without playing")
+    p.add_argument("--headless", action="store_true", help="no window: play through, printing a status line")
+    p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds")
 
     p = sub.add_parser("health", help="per-channel wiring health")
     p.add_argument("--port", help="serial port; omit for the virtual finger")
     p.add_argument("--rig", help="rig file (TOML)")
     p.add_argument("--text", action="store_true", help="print the table in the terminal every second")
     p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds")
+    p.add_argument("--window", type=_positive_float("--window"), default=2.0, metavar="S",
+                   help="seconds of frames judged at each refresh (default 2)")
+    add_virtual_source_arguments(p)
 
     p = sub.add_parser("inspect", help="summary of a recording")
     p.add_argument("file", metavar="FILE")

@@ -64,6 +64,7 @@ __all__ = [
     "filtered_intervals",
     "holds_from_recording",
     "choose_degree",
+    "fit_warnings",
     "calibrate_files",
     "tare_calibration",
     "process_recording",
@@ -363,22 +364,43 @@ def holds_from_recording(
 # ----------------------------------------------------------------------------- calibrate
 
 
-def _cv_rms(holds: Sequence[Hold], *, rig: Rig, degree: int) -> float:
-    """Leave-one-reference-out prediction RMS over all segments, 1/m (inf if no fold works)."""
+def _interior_references(refs: np.ndarray) -> list[tuple]:
+    """Bent references that lie inside the range of the others, segment by segment.
+
+    Leaving out the largest bend of a side would test extrapolation, which no
+    degree does well and which the calibrated range excludes anyway.
+    """
+    keys = sorted({tuple(np.round(r, 9)) for r in refs})
+    out = []
+    for key in keys:
+        k = np.array(key, dtype=np.float64)
+        if not np.any(np.nan_to_num(k) != 0):
+            continue
+        others = np.array([o for o in keys if o != key], dtype=np.float64)
+        with np.errstate(invalid="ignore"):
+            pos_ok = (k <= 0) | np.any(others >= k, axis=0)
+            neg_ok = (k >= 0) | np.any(others <= k, axis=0)
+        if np.all((pos_ok & neg_ok) | ~np.isfinite(k)):
+            out.append(key)
+    return out
+
+
+def _cv_rms(holds: Sequence[Hold], *, rig: Rig, degree: int, folds: list[tuple]) -> float:
+    """Leave-one-reference-out prediction RMS over all segments, 1/m (inf if a fold cannot be fitted)."""
     refs = np.array([np.asarray(h.reference_per_m, dtype=np.float64) for h in holds])
-    means = np.array([np.nanmean(h.resistance_ohm, axis=0) for h in holds])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # a segment NaN throughout a hold
+        means = np.array([np.nanmean(h.resistance_ohm, axis=0) for h in holds])
     keys = [tuple(np.round(r, 9)) for r in refs]
-    bent = sorted({k for k, r in zip(keys, refs) if np.any(np.nan_to_num(r) != 0)})
     sq, cnt = 0.0, 0
-    for key in bent:
+    for key in folds:
         keep = [h for h, k in zip(holds, keys) if k != key]
         out = np.array([k == key for k in keys])
         try:
             cal, _ = fit_calibration(keep, rig=rig, degree=degree)
         except CalibrationError:
-            return math.inf  # this degree cannot even be fitted without one reference
-        pred = cal.curvature_per_m(means[out])
-        err = pred - refs[out]
+            return math.inf
+        err = cal.curvature_per_m(means[out]) - refs[out]
         ok = np.isfinite(err)
         sq += float(np.sum(err[ok] ** 2))
         cnt += int(ok.sum())
@@ -388,23 +410,25 @@ def _cv_rms(holds: Sequence[Hold], *, rig: Rig, degree: int) -> float:
 def choose_degree(holds: Sequence[Hold], *, rig: Rig, max_degree: int = 3) -> tuple[int, dict[int, float]]:
     """Pick the polynomial degree of the calibration by cross-validation.
 
-    For each degree 1 .. ``max_degree`` the fit is repeated leaving out all
-    holds of one bent reference at a time and predicting them; the degree with
-    the smallest prediction RMS wins (a higher degree must beat the lower one
-    by more than 5 %, so noise does not buy flexibility). With fewer than three
-    distinct bent references there is nothing to cross-validate: degree 2
-    (:func:`fit_calibration` lowers it where a side has fewer references).
+    For each degree 1 .. ``max_degree`` the fit is repeated leaving out the
+    holds of one bent reference at a time (each reference that lies inside
+    the range of the others: interpolation is what a calibration is used
+    for) and predicting them. The degree with the smallest prediction RMS
+    wins; a higher degree must beat the lower one by more than 5 %, so noise
+    does not buy flexibility. Without such a reference there is nothing to
+    cross-validate: degree 2 (:func:`fit_calibration` lowers it where a side
+    has fewer distinct references).
 
     Returns
     -------
     (degree, cv_rms_per_m)
         The degree, and the cross-validated RMS per degree tried, 1/m.
     """
-    refs = {tuple(np.round(np.nan_to_num(np.asarray(h.reference_per_m, dtype=np.float64)), 9)) for h in holds}
-    n_bent = sum(1 for r in refs if any(v != 0 for v in r))
-    if n_bent < 3:
+    refs = np.array([np.asarray(h.reference_per_m, dtype=np.float64) for h in holds])
+    folds = _interior_references(refs)
+    if not folds:
         return 2, {}
-    scores = {d: _cv_rms(holds, rig=rig, degree=d) for d in range(1, max_degree + 1)}
+    scores = {d: _cv_rms(holds, rig=rig, degree=d, folds=folds) for d in range(1, max_degree + 1)}
     best = 1
     for d in range(2, max_degree + 1):
         if scores[d] < 0.95 * scores[best]:
@@ -555,6 +579,23 @@ def _format_ref(ref: np.ndarray | None) -> str:
     return "[" + " ".join("nan" if not np.isfinite(v) else f"{v:+.1f}" for v in ref) + "]"
 
 
+def _segment_list(segs: list[int]) -> str:
+    if len(segs) == 1:
+        return f"segment {segs[0]}"
+    if segs == list(range(segs[0], segs[-1] + 1)):
+        return f"segments {segs[0]}-{segs[-1]}"
+    return "segments " + ",".join(str(k) for k in segs)
+
+
+def fit_warnings(report: FitReport) -> list[str]:
+    """The fit's warnings, the same text for several segments said once."""
+    by_text: dict[str, list[int]] = {}
+    for seg in report.segments:
+        for w in seg.warnings:
+            by_text.setdefault(w, []).append(seg.segment)
+    return list(report.warnings) + [f"{_segment_list(segs)}: {w}" for w, segs in by_text.items()]
+
+
 def _print_calibration_report(run: CalibrationRun, out: Path, stream: TextIO) -> None:
     p = lambda *a: print(*a, file=stream)  # noqa: E731
     p("labelled intervals:")
@@ -569,11 +610,21 @@ def _print_calibration_report(run: CalibrationRun, out: Path, stream: TextIO) ->
         scores = ", ".join(
             f"degree {d}: {v:.3f}" if math.isfinite(v) else f"degree {d}: -" for d, v in run.cv_rms_per_m.items()
         )
-        p(f"polynomial degree {run.degree} (leave-one-reference-out prediction RMS, 1/m: {scores})")
+        p(f"polynomial degree up to {run.degree}, chosen by leave-one-reference-out prediction RMS (1/m): {scores}")
     else:
-        p(f"polynomial degree {run.degree} (too few distinct references to cross-validate)")
-    p("fit per segment (points = holds; residual of the hold means; range = references covered):")
-    p(run.report.summary())
+        p(f"polynomial degree up to {run.degree} (no reference inside the others' range to cross-validate with)")
+    p("fit per segment (points: holds used; residual: model - reference at the hold means):")
+    p("  segment  points  frames  range covered 1/m    rms residual 1/m  % of range  degree +/-")
+    for sr in run.report.segments:
+        p(
+            f"  {sr.segment:7d}  {sr.n_holds:6d}  {sr.n_frames:6d}  {sr.curvature_min_per_m:+8.2f} .. "
+            f"{sr.curvature_max_per_m:+8.2f}  {sr.rms_residual_per_m:16.3f}  {sr.rms_residual_percent:10.2f}  "
+            f"{sr.degree_positive}/{sr.degree_negative}"
+        )
+    warns = fit_warnings(run.report)
+    p("warnings:" if warns else "warnings: none")
+    for w in warns:
+        p(f"  {w}")
     p(f"wrote {out}")
 
 
@@ -607,7 +658,7 @@ def calibrate_command(
     run = calibrate_files(files, rig=rig, table=table)
     for note in run.notes:
         _warn(note, stderr)
-    for w in run.report.all_warnings:
+    for w in fit_warnings(run.report):
         _warn(w, stderr)
     _write_text(out, run.calibration.to_json(), replace=force)
     _print_calibration_report(run, out, stdout)

@@ -47,8 +47,8 @@ A client may send one JSON object per line. The only request now is
 (every frame if null or 0; never above the publisher's own ``max_rate_hz``,
 ``--publish-rate-hz`` on the command line). Each request is answered by one
 line with ``"ok"``: ``{"ok": true, "max_rate_hz": 50.0}`` or ``{"ok": false,
-"error": "..."}``. Lines without ``seq`` are such replies; frame messages
-always have ``seq``.
+"error": "..."}``; the new rate holds from the frame after that reply. Lines
+without ``seq`` are such replies; frame messages always have ``seq``.
 
 A slow client
 -------------

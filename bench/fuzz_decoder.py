@@ -50,7 +50,7 @@ def test_one_input(data: bytes) -> None:
         _report()
     if not data:
         return
-    chunk = data[0] + 1
+    chunk = 8 + 4 * data[0]  # 8..1028 bytes per feed, as serial reads deliver them
     payload = data[1:]
     dec = StreamDecoder()
     got = []

@@ -41,6 +41,8 @@ def add_virtual_device_arguments(parser: argparse.ArgumentParser) -> None:
     a("--time-scale", metavar="X", default="1", help="device seconds per wall second (default 1)")
     a("--link", metavar="PATH", help="where to make the port's symlink (default: a temp folder)")
     a("--truth", metavar="FILE", help="write per-frame ground truth to this HDF5 file")
+    a("--clock-start-s", metavar="S", default="0",
+      help="device clock reading at boot, s (4294 puts its 32-bit microsecond wrap 1 s in)")
     g = parser.add_argument_group("simulated faults")
     g.add_argument("--open-tap", metavar="K", help="wire from tap K to its ADC input broken")
     g.add_argument("--short-taps", metavar="A,B", help="taps A and B shorted together")
@@ -117,6 +119,7 @@ def build_virtual_finger(args):
     return VirtualFinger(
         rig=rig, rate_hz=rate, adc_bits=bits, seed=seed, faults=faults, hold=args.hold,
         scenario=args.scenario, time_scale=scale, link_path=args.link, truth_path=args.truth,
+        clock_start_s=_number(args.clock_start_s, "--clock-start-s", low=0.0),
     )
 
 

@@ -112,6 +112,7 @@ class VirtualFinger:
         tick_s: float = 0.005,
         max_rate_hz: float = 50000.0,
         noise_lsb: float = 1.2,
+        clock_start_s: float = 0.0,
     ):
         self.rig = rig if rig is not None else load_rig(None)
         self.faults = faults if faults is not None else Faults()
@@ -133,6 +134,10 @@ class VirtualFinger:
         self.scenario = scenario
         self.tx_buffer_bytes = int(tx_buffer_bytes)
         self.tick_s = float(tick_s)
+        if not (clock_start_s >= 0 and math.isfinite(clock_start_s)):
+            raise UserError(f"clock_start_s {clock_start_s!r}: must be a number >= 0")
+        # what the device's microsecond counter reads at boot (it wraps at 2**32 us, 71.6 min)
+        self._clock_start_us = int(round(clock_start_s * 1e6))
         self._base_model = FingerModel(
             rig=self.rig, seed=seed, adc_bits=adc_bits, scenario=scenario, hold=hold,
             faults=self.faults, noise_lsb=noise_lsb,
@@ -647,7 +652,7 @@ class VirtualFinger:
                 status[part[0]] |= fp.STATUS_TX_OVERFLOW
                 self._overflow_pending = False
             wire = fp.encode_samples_bulk(
-                seq=frame[part], t_us=np.rint(t[part] * 1e6).astype(np.int64),
+                seq=frame[part], t_us=np.rint(t[part] * 1e6).astype(np.int64) + self._clock_start_us,
                 status=status[part], codes=codes[part],
             )
             if f.corrupt_rate > 0:

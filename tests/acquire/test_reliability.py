@@ -147,3 +147,56 @@ def test_corrupted_stream_every_good_packet_kept(tmp_path):
         assert (codes == t_codes[rows]).all()  # no corrupted packet passed as good
     bad = sum(v for k, v in counters.items() if k.startswith("drop_"))
     assert bad > 0 and counters["frames_lost"] > 0
+
+
+def _rss_mb(pid: int) -> float | None:
+    try:
+        with open(f"/proc/{pid}/status") as fh:
+            for line in fh:
+                if line.startswith("VmRSS:"):
+                    return int(line.split()[1]) / 1024
+    except FileNotFoundError:
+        return None
+    return None
+
+
+@pytest.mark.slow
+def test_long_run_sped_up(tmp_path):
+    """10 minutes of device time at 1 kHz, sent 40x faster than real time: memory flat, seq wrapping
+    (9 times) and the device's 32-bit microsecond clock wrapping (5 min in) handled, file size as expected.
+    bench/bench_long_run.py does the full hour."""
+    wrap_in_s = 300.0
+    vf = VirtualFinger(rate_hz=1000, time_scale=40, link_path=tmp_path / "finger",
+                       clock_start_s=2**32 / 1e6 - wrap_in_s)
+    vf.start()
+    out = tmp_path / "long.h5"
+    rss = []
+    try:
+        assert vf.wait_ready(timeout_s=10)
+        proc = subprocess.Popen(record_cmd(vf.path, out, "--duration", "600"), stderr=subprocess.PIPE,
+                                text=True, cwd=REPO)
+        while proc.poll() is None:
+            value = _rss_mb(proc.pid)
+            if value is not None:
+                rss.append(value)
+            try:
+                proc.wait(0.5)  # a sampling interval, not a wait for a result
+            except subprocess.TimeoutExpired:
+                pass
+        err = proc.stderr.read()
+    finally:
+        vf.stop()
+    assert proc.returncode == 0, err
+    with open_recording(out) as rec:
+        seq = rec.frames().seq
+        t = rec.file["raw/t_device_s"][:]
+        lost = rec.counters()["frames_lost"]
+    assert seq.shape[0] == 600_000 and lost == 0
+    assert (np.diff(seq) == 1).all()
+    assert np.allclose(np.diff(t), 1e-3, atol=2e-6)  # straight through the 2**32 us wrap
+    per_frame = 2 * 6 + 8 + 8 + 8 + 1  # adc, seq, t_device, t_host, status
+    assert 0.9 * 600_000 * per_frame < out.stat().st_size < 1.3 * 600_000 * per_frame
+    # memory flat: the second half of the run uses no more than the first half plus noise
+    half = len(rss) // 2
+    assert len(rss) > 10
+    assert max(rss[half:]) < max(rss[:half]) + 8.0, rss

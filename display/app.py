@@ -1,0 +1,349 @@
+"""``tapcurve live | replay | health | export``: windows when a display is there, the terminal otherwise.
+
+:func:`run_command` runs on the main thread, which becomes the Qt GUI thread
+when a window opens. Ctrl-C (SIGINT) and SIGTERM close the Qt application
+(a 100 ms timer lets Python see the signal while Qt waits), and so does
+closing the window; in every case the session is stopped afterwards, so a
+recording is closed with its labels ended.
+
+Display detection (Linux and other X11/Wayland systems): a display is there
+when ``$DISPLAY`` or ``$WAYLAND_DISPLAY`` is set, or when ``QT_QPA_PLATFORM``
+is set explicitly (``offscreen`` runs the real window without a screen, as the
+tests do). Without one, ``live`` and ``replay`` run headless with a status line
+every second, ``health`` prints its table every second, and ``export`` renders
+with the offscreen platform.
+"""
+from __future__ import annotations
+
+import math
+import os
+import signal
+import sys
+import threading
+import time
+from pathlib import Path
+
+from acquire.errors import UserError
+
+__all__ = ["run_command", "display_available", "make_app", "exec_app"]
+
+
+def display_available() -> tuple[bool, str]:
+    """(available, why): whether a Qt window can be shown."""
+    plat = os.environ.get("QT_QPA_PLATFORM")
+    if plat:
+        return True, f"QT_QPA_PLATFORM={plat}"
+    if sys.platform == "darwin" or sys.platform.startswith("win"):
+        return True, sys.platform
+    for var in ("WAYLAND_DISPLAY", "DISPLAY"):
+        if os.environ.get(var):
+            return True, f"${var}={os.environ[var]}"
+    return False, "no display: $DISPLAY and $WAYLAND_DISPLAY are unset and QT_QPA_PLATFORM is not set"
+
+
+def make_app():
+    """The QApplication (created once) with our pyqtgraph options."""
+    from PyQt5 import QtWidgets
+
+    from .theme import configure_pyqtgraph
+
+    app = QtWidgets.QApplication.instance()
+    if app is None:
+        app = QtWidgets.QApplication(["tapcurve"])
+        app.setApplicationName("tapcurve")
+    configure_pyqtgraph()
+    return app
+
+
+def exec_app(app, *, duration_s: float | None = None) -> bool:
+    """Run the Qt event loop until the last window closes, SIGINT/SIGTERM, or ``duration_s``.
+
+    Returns True if a signal ended it.
+    """
+    from PyQt5 import QtCore
+
+    interrupted = threading.Event()
+
+    def on_signal(signum, frame):
+        interrupted.set()
+        app.quit()
+
+    old = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
+    # Qt's loop is C++: without a periodic return to Python a signal waits for the next event
+    wake = QtCore.QTimer()
+    wake.timeout.connect(lambda: None)
+    wake.start(100)
+    if duration_s is not None:
+        QtCore.QTimer.singleShot(int(duration_s * 1000), app.quit)
+    try:
+        app.exec_()
+    finally:
+        wake.stop()
+        for sig, handler in old.items():
+            signal.signal(sig, handler)
+    return interrupted.is_set()
+
+
+class _StopOnSignal:
+    """SIGINT/SIGTERM set an event instead of raising (headless loops)."""
+
+    def __init__(self):
+        self.event = threading.Event()
+        self._old = {}
+
+    def __enter__(self):
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            self._old[sig] = signal.signal(sig, lambda *_: self.event.set())
+        return self
+
+    def __exit__(self, *exc):
+        for sig, old in self._old.items():
+            signal.signal(sig, old)
+
+
+def _say(text: str) -> None:
+    print(f"tapcurve: {text}", file=sys.stderr, flush=True)
+
+
+def _fmt_mb(n: int) -> str:
+    return f"{n / 1e6:.1f} MB"
+
+
+def live_status_line(st: dict) -> str:
+    """One line of a live session's status (terminal)."""
+    rate = st.get("frame_rate_hz", math.nan)
+    lat = st.get("latency_s", math.nan)
+    parts = [
+        f"{rate:7.1f} frames/s" if math.isfinite(rate) else "   -- frames/s",
+        f"lost {st['frames_lost']}",
+        f"bad packets {st['bad_packets']}",
+        f"reconnects {st['reconnects']}",
+        f"latency {lat * 1e3:.0f} ms" if math.isfinite(lat) else "latency -- ms",
+    ]
+    if not st.get("connected", True):
+        parts.append("LINK DOWN")
+    if st.get("recording"):
+        parts.append(f"recording {st['recording']} {_fmt_mb(st['recording_bytes'])} ({st['recording_frames']} frames)")
+    if st.get("recorder_error"):
+        parts.append(f"RECORDING FAILED: {st['recorder_error']}")
+    return " | ".join(parts)
+
+
+# ----------------------------------------------------------------------------- live
+
+
+def _check_new_file(path: str | None, option: str) -> Path | None:
+    if path is None:
+        return None
+    p = Path(path)
+    if p.exists():
+        raise UserError(f"{option} {p}: exists; tapcurve never overwrites a recording")
+    if not p.parent.is_dir():
+        raise UserError(f"{option} {p}: folder {p.parent} does not exist")
+    return p
+
+
+def _live(args) -> int:
+    from acquire.rig import load_rig
+    from acquire.session import LiveSession, load_calibration_for, virtual_options_from_args
+
+    rig = load_rig(args.rig)
+    calibration = load_calibration_for(args.calibration, rig)
+    record = _check_new_file(args.record, "--record")
+    if args.label is not None and record is None:
+        raise UserError("--label marks a recording: give --record FILE too")
+    if args.label is not None:
+        from acquire.recording import check_label_text
+
+        check_label_text(args.label)
+    vo = virtual_options_from_args(args, rig) if args.port is None else None
+    have_display, why = display_available()
+    windowed = have_display and not args.headless
+    if not windowed and not args.headless:
+        _say(f"{why}: running headless (acquisition{' and recording' if record else ''}, a status line "
+             "every second; Ctrl-C stops)")
+    app = make_app() if windowed else None
+    session = LiveSession(
+        port=args.port, rig=rig, calibration=calibration, record_path=record, record_label=args.label,
+        publish=args.publish, allow_remote=args.publish_allow_remote, virtual_options=vo,
+    )
+    session.start()
+    _say(f"reading {session.source_name} at {session.rate_hz:g} Hz")
+    if record is not None:
+        _say(f"recording to {record}")
+    summary = None
+    try:
+        if windowed:
+            from .window import SensorWindow
+
+            window = SensorWindow(source=session)
+            window.show()
+            exec_app(app, duration_s=args.duration)
+            window.close()
+        else:
+            _live_headless(session, duration_s=args.duration)
+    finally:
+        try:
+            summary = session.stop_recording()
+        finally:
+            session.stop()
+    return _report_recording(summary)
+
+
+def _report_recording(summary) -> int:
+    if summary is None:
+        return 0
+    labels = summary["labels"]
+    _say(f"{summary['path']}: {summary['frames']} frames, {_fmt_mb(summary['bytes'])}, {len(labels)} labels")
+    if summary["error"]:
+        _say(summary["error"])
+        return 1
+    return 0
+
+
+def _live_headless(session, *, duration_s: float | None) -> None:
+    tty = sys.stderr.isatty()
+    started = time.monotonic()
+    with _StopOnSignal() as stop:
+        while not stop.event.wait(1.0):
+            st = session.status()
+            line = live_status_line(st)
+            if tty:
+                sys.stderr.write("\r" + line[:200].ljust(120))
+            else:
+                sys.stderr.write(line + "\n")
+            sys.stderr.flush()
+            if st.get("recorder_error"):
+                break
+            if duration_s is not None and time.monotonic() - started >= duration_s:
+                break
+    if tty:
+        sys.stderr.write("\n")
+
+
+# ----------------------------------------------------------------------------- replay
+
+
+def _replay(args) -> int:
+    from acquire.session import ReplaySource
+
+    if not 0.1 <= args.speed <= 20.0:
+        raise UserError(f"--speed {args.speed:g}: must be 0.1 .. 20")
+    have_display, why = display_available()
+    windowed = have_display and not args.headless
+    if not windowed and not args.headless:
+        _say(f"{why}: replaying headless at {args.speed:g}× with a status line every second (Ctrl-C stops)")
+    app = make_app() if windowed else None
+    src = ReplaySource(path=args.file, calibration=args.calibration, follow=args.follow).start()
+    try:
+        src.wait_ready()
+        if src.recovered:
+            _say(f"{args.file}: was left unclosed by a stopped recorder; recovered")
+        src.set_speed(args.speed)
+        if not args.paused:
+            src.play()
+        if windowed:
+            from .window import SensorWindow
+
+            window = SensorWindow(source=src)
+            window.show()
+            exec_app(app, duration_s=args.duration)
+            window.close()
+        else:
+            _replay_headless(src, duration_s=args.duration)
+    finally:
+        src.stop()
+    return 0
+
+
+def _replay_headless(src, *, duration_s: float | None) -> None:
+    started = time.monotonic()
+    with _StopOnSignal() as stop:
+        while not stop.event.wait(1.0):
+            st = src.status()
+            labels = [lab.text for lab in src.labels if lab.t_start_s <= src.position_s <= lab.t_end_s]
+            line = (f"t {st['position_s']:.3f} / {st['duration_s']:.3f} s | frame {src.position_index + 1} of "
+                    f"{st['frames']} | {st['speed']:g}×" + (f" | label {', '.join(labels)}" if labels else ""))
+            print(line, file=sys.stderr, flush=True)
+            if not st["playing"] and not src.follow:
+                break
+            if duration_s is not None and time.monotonic() - started >= duration_s:
+                break
+
+
+# ----------------------------------------------------------------------------- health
+
+
+def _health(args) -> int:
+    from acquire.health import HealthMonitor, format_health_table
+    from acquire.rig import load_rig
+    from acquire.session import LiveSession, virtual_options_from_args
+
+    rig = load_rig(args.rig)
+    vo = virtual_options_from_args(args, rig) if args.port is None else None
+    have_display, why = display_available()
+    windowed = have_display and not args.text
+    if not windowed and not args.text:
+        _say(f"{why}: printing the health table every second instead (Ctrl-C stops)")
+    app = make_app() if windowed else None
+    session = LiveSession(port=args.port, rig=rig, virtual_options=vo)
+    session.start()
+    try:
+        if windowed:
+            from .health_view import HealthWindow
+
+            window = HealthWindow(session=session, window_s=args.window)
+            window.show()
+            exec_app(app, duration_s=args.duration)
+            window.close()
+        else:
+            monitor = HealthMonitor(cursor=session.cursor(), rig=rig, adc_bits=session.adc_bits,
+                                    rate_hz=session.rate_hz, counters=session.reader.all_counters,
+                                    window_s=args.window)
+            tty = sys.stdout.isatty()
+            started = time.monotonic()
+            with _StopOnSignal() as stop:
+                while not stop.event.wait(1.0):
+                    monitor.update()
+                    table = format_health_table(monitor.report())
+                    if tty:
+                        sys.stdout.write("\x1b[H\x1b[J")  # redraw in place
+                    sys.stdout.write(table + "\n\n")
+                    sys.stdout.flush()
+                    if args.duration is not None and time.monotonic() - started >= args.duration:
+                        break
+    finally:
+        session.stop()
+    return 0
+
+
+# ----------------------------------------------------------------------------- export
+
+
+def _export(args) -> int:
+    have_display, _ = display_available()
+    if not have_display:
+        os.environ["QT_QPA_PLATFORM"] = "offscreen"  # render without a screen
+    make_app()
+    from .export import export_recording_shape
+
+    out = export_recording_shape(path=args.file, out=args.out, time_s=args.time, calibration=args.calibration)
+    _say(f"wrote {out}")
+    return 0
+
+
+_COMMANDS = {"live": _live, "replay": _replay, "health": _health, "export": _export}
+
+
+def run_command(args) -> int:
+    """Run ``args.command`` (one of live, replay, health, export); returns the exit status.
+
+    Raises
+    ------
+    UserError
+        Bad input (reported by the caller as one line, exit 2).
+    """
+    handler = _COMMANDS.get(args.command)
+    if handler is None:
+        raise UserError(f"{args.command}: not a display command")
+    return int(handler(args) or 0)
