@@ -217,6 +217,7 @@ def _start_publisher(args, *, reader, rig, calibration):
         rate_hz=reader.rate_hz,
         adc_bits=reader.adc_bits,
         counters=reader.all_counters,
+        max_rate_hz=getattr(args, "publish_rate_hz", None),
     )
     pub.start()
     return pub
@@ -234,6 +235,10 @@ def _cmd_record(args) -> int:
     if not out.parent.is_dir():
         raise UserError(f"{out}: folder {out.parent} does not exist")
     calibration = _load_calibration(args.calibration, rig)
+    if args.publish:
+        from .publish import check_address
+
+        check_address(args.publish, allow_remote=args.publish_allow_remote)  # before anything opens
     reader = SerialReader(port=args.port)
     reader.start()
     publisher = None
@@ -241,6 +246,8 @@ def _cmd_record(args) -> int:
     try:
         rig.check_device(channels=reader.n_channels, where=f"device on {args.port}")
         pipeline = _make_pipeline(rig, calibration, reader)
+        # bound before the file exists: a refused address leaves no recording behind
+        publisher = _start_publisher(args, reader=reader, rig=rig, calibration=calibration)
         max_frames = None if args.duration is None else max(1, int(round(args.duration * reader.rate_hz)))
         recorder = Recorder(
             path=out,
@@ -257,7 +264,6 @@ def _cmd_record(args) -> int:
             n_segments=rig.n_segments,
         )
         recorder.start()
-        publisher = _start_publisher(args, reader=reader, rig=rig, calibration=calibration)
         status = _StatusLine(enabled=not args.quiet and sys.stderr.isatty())
         started = time.monotonic()
         # a stalled device must not keep a --duration run going for ever

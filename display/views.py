@@ -233,6 +233,7 @@ class TraceView(pg.GraphicsLayoutWidget):
             p.setXRange(-self.window_s, 0.0, padding=0.01)
             p.setMouseEnabled(x=False, y=True)
             p.setClipToView(False)
+            p.getAxis("left").setWidth(62)  # both plots' time axes line up
         self.bottom.setXLink(self.top)
         self.bottom.setLabel("bottom", "time before the newest frame", units="s")
         self.bottom.setLabel("left", "curvature", units="1/m")

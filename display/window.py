@@ -117,8 +117,8 @@ class SensorWindow(QtWidgets.QMainWindow):
         src = self.source
         self.shape = ShapeView(rig=self.rig, reconstructor=src.reconstructor)
         self.bars = SegmentBars(n_segments=self.rig.n_segments)
-        self.bars.setMaximumWidth(260)
-        self.bars.setMinimumWidth(170)
+        self.bars.setMaximumWidth(240)
+        self.bars.setMinimumWidth(150)
         self.traces = TraceView(
             channel_names=self.rig.channels, n_segments=self.rig.n_segments,
             window_s=src.feed.window_s, adc_bits=src.adc_bits,
@@ -147,7 +147,7 @@ class SensorWindow(QtWidgets.QMainWindow):
             bar.addSeparator()
             self.label_edit = QtWidgets.QLineEdit()
             self.label_edit.setPlaceholderText("label, e.g. flat or radius=25mm")
-            self.label_edit.setFixedWidth(210)
+            self.label_edit.setFixedWidth(190)
             self.label_edit.returnPressed.connect(self.toggle_label)
             bar.addWidget(self.label_edit)
             self.label_button = self._button("Start label [F2]", self.toggle_label,
@@ -163,8 +163,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.pause_button = self._button("Pause view", self._pause_toggled, checkable=True,
                                          tip="freeze the drawing; acquisition and recording go on")
         bar.addWidget(self.pause_button)
+        bar.addWidget(QtWidgets.QLabel(" traces "))
         self.trace_mode = QtWidgets.QComboBox()
-        self.trace_mode.addItems(["traces: ADC codes", "traces: segment resistance"])
+        self.trace_mode.setToolTip("what the upper traces show")
+        self.trace_mode.addItems(["ADC codes", "segment Ω"])
         self.trace_mode.currentIndexChanged.connect(
             lambda i: self.traces.set_mode("codes" if i == 0 else "resistance"))
         bar.addWidget(self.trace_mode)
@@ -212,6 +214,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.status_label.setObjectName("status")
         self.notice_label = QtWidgets.QLabel("")
         self.notice_label.setObjectName("notice")
+        # long texts must not widen the window past a laptop screen: they are cut instead
+        for label in (self.status_label, self.notice_label):
+            label.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
+            label.setMinimumWidth(50)
         self.caution_label = QtWidgets.QLabel(SAFETY_TEXT)
         self.caution_label.setObjectName("caution")
         self.caution_label.setWordWrap(True)
