@@ -228,7 +228,7 @@ class Pipeline:
             curvature = xy = outside = None
         else:
             k, outside = cal.evaluate(filtered)
-            xy = self.reconstructor.shape_xy(k).astype(np.float32)
+            xy = self.reconstructor.shape_xy(k, dtype=np.float32)
             curvature = k.astype(np.float32)
         return Processed(
             resistance_ohm=resistance,

@@ -122,8 +122,10 @@ class Reconstructor:
             xi, w = np.polynomial.legendre.leggauss(_GAUSS_NODES)
             h = np.diff(s)
             nodes = s[:-1, None] + 0.5 * h[:, None] * (1.0 + xi[None, :])  # (P-1, G)
-            self._theta_nodes = np.ascontiguousarray(self._theta_matrix(nodes.reshape(-1)).T)  # (S, (P-1)G)
-            self._weights = (0.5 * h[:, None] * w[None, :])  # (P-1, G)
+            # node-major columns (S, G*(P-1)): each node's headings form a contiguous row per frame
+            self._theta_nodes = np.ascontiguousarray(self._theta_matrix(nodes.T.reshape(-1)).T)
+            self._weights = np.ascontiguousarray(0.5 * h[None, :] * w[:, None])  # (G, P-1)
+            self._weights32 = self._weights.astype(np.float32)
         else:
             self._h = np.diff(s)
             self._theta_pts_t = np.ascontiguousarray(self._theta_pts.T)  # (S, P)
@@ -206,25 +208,33 @@ class Reconstructor:
         """Heading theta at every point, (N, S) 1/m -> (N, P) rad."""
         return np.asarray(curvature_per_m, dtype=np.float64) @ self._theta_pts.T
 
-    def shape_xy(self, curvature_per_m: np.ndarray) -> np.ndarray:
+    def shape_xy(self, curvature_per_m: np.ndarray, *, dtype=np.float64) -> np.ndarray:
         """Shape points of N frames.
 
         Parameters
         ----------
         curvature_per_m : array_like, shape (N, S)
             Mean curvature of each segment, 1/m.
+        dtype : numpy.float64 or numpy.float32
+            Of the result. With float32 the headings are still formed in double
+            precision, but cos/sin and the running sums are single precision
+            (several times faster; heading error about 3e-7 rad, position error
+            well below 0.1 um for a sensor of 0.1 m, below what float32 stores).
 
         Returns
         -------
-        ndarray of float64, shape (N, P, 2)
+        ndarray of ``dtype``, shape (N, P, 2)
             x, y in the base frame, m, at arc lengths :attr:`s_m`. A NaN
             curvature makes its whole frame NaN.
         """
         m = np.asarray(curvature_per_m, dtype=np.float64)
         if m.ndim != 2 or m.shape[1] != self.n_segments:
             raise ValueError(f"expected shape (N, {self.n_segments}), got {m.shape}")
+        dtype = np.dtype(dtype)
+        if dtype not in (np.dtype(np.float64), np.dtype(np.float32)):
+            raise ValueError(f"dtype must be float64 or float32, got {dtype}")
         n = m.shape[0]
-        out = np.empty((n, self.n_points, 2))
+        out = np.empty((n, self.n_points, 2), dtype=dtype)
         # blocks of frames small enough to stay in cache (large N is memory-bound otherwise)
         step = max(1, _BLOCK_VALUES // (self.n_points * _GAUSS_NODES))
         for i in range(0, n, step):
@@ -233,16 +243,27 @@ class Reconstructor:
 
     def _shape_block(self, m: np.ndarray, out: np.ndarray) -> None:
         n = m.shape[0]
+        single = out.dtype == np.float32
         out[:, 0, :] = 0.0
         if self.method == "smooth":
-            th = (m @ self._theta_nodes).reshape(n, self.n_points - 1, _GAUSS_NODES)
-            dx = np.einsum("npg,pg->np", np.cos(th), self._weights)
-            dy = np.einsum("npg,pg->np", np.sin(th), self._weights)
+            th = (m @ self._theta_nodes).reshape(n, _GAUSS_NODES, self.n_points - 1)
+            if single:
+                th = th.astype(np.float32)
+            w = self._weights32 if single else self._weights
+            c = np.cos(th)
+            c *= w
+            dx = c.sum(axis=1)
+            np.sin(th, out=c)
+            c *= w
+            dy = c.sum(axis=1)
         else:
             th = m @ self._theta_pts_t  # (N, P)
             dth = np.diff(th, axis=1)
             mid = th[:, :-1] + 0.5 * dth
             chord = self._h * np.sinc(dth * (0.5 / np.pi))  # h sin(d/2)/(d/2), exact for an arc
+            if single:
+                mid = mid.astype(np.float32)
+                chord = chord.astype(np.float32)
             dx = chord * np.cos(mid)
             dy = chord * np.sin(mid)
         np.cumsum(dx, axis=1, out=out[:, 1:, 0])

@@ -78,7 +78,7 @@ QLineEdit, QComboBox, QListWidget, QTableWidget {{ background: #0d1218; border: 
     border-radius: 3px; padding: 2px 4px; color: {COLOURS['text']}; selection-background-color: #2c4a60; }}
 QHeaderView::section {{ background: {COLOURS['panel']}; color: {COLOURS['muted']}; border: none;
     border-right: 1px solid {COLOURS['panel_edge']}; padding: 3px; }}
-QLabel#status {{ color: {COLOURS['text']}; font-family: monospace; }}
+QLabel#status {{ color: {COLOURS['text']}; }}
 QLabel#notice {{ color: {COLOURS['caution']}; }}
 QLabel#caution {{ color: {COLOURS['caution']}; font-size: 11px; }}
 QLabel#panelTitle {{ color: {COLOURS['muted']}; font-weight: bold; }}

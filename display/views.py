@@ -91,6 +91,13 @@ class ShapeView(pg.PlotWidget):
             self.tap_labels.append(item)
         self._trail_brushes: dict[int, list] = {}
         self.message = ""
+        # a label over the view, not in it: it stays put when the user pans or zooms
+        self.message_label = QtWidgets.QLabel("", self)
+        self.message_label.setWordWrap(True)
+        self.message_label.setStyleSheet(
+            f"color: {COLOURS['caution']}; background: rgba(17, 22, 29, 215); border: 1px solid "
+            f"{COLOURS['panel_edge']}; border-radius: 4px; padding: 6px; font-size: 12px;")
+        self.message_label.setVisible(False)
         self._set_range(reach, max(t_above, t_below))
 
     def _set_range(self, reach: float, thick: float) -> None:
@@ -103,12 +110,24 @@ class ShapeView(pg.PlotWidget):
         self.getPlotItem().disableAutoRange()
 
     def set_message(self, text: str) -> None:
-        """A line of state above the plot (no calibration, reading unusable ...)."""
-        if text != self.message:
-            self.message = text
-            self.getPlotItem().setTitle(
-                f"<span style='color:{COLOURS['caution']};font-size:10pt'>{text}</span>" if text else None
-            )
+        """A note over the plot (no calibration, reading unusable ...); empty hides it."""
+        if text == self.message:
+            return
+        self.message = text
+        self.message_label.setText(text)
+        self.message_label.setVisible(bool(text))
+        self._place_message()
+
+    def _place_message(self) -> None:
+        w = max(120, self.width() - 110)
+        self.message_label.setFixedWidth(w)
+        self.message_label.adjustSize()
+        self.message_label.move(70, 12)
+
+    def resizeEvent(self, event):  # noqa: N802 (Qt name)
+        super().resizeEvent(event)
+        if hasattr(self, "message_label"):
+            self._place_message()
 
     def _brushes(self, n: int) -> list:
         b = self._trail_brushes.get(n)
@@ -233,7 +252,7 @@ class TraceView(pg.GraphicsLayoutWidget):
             p.setXRange(-self.window_s, 0.0, padding=0.01)
             p.setMouseEnabled(x=False, y=True)
             p.setClipToView(False)
-            p.getAxis("left").setWidth(62)  # both plots' time axes line up
+            p.getAxis("left").setWidth(72)  # both plots' time axes line up
         self.bottom.setXLink(self.top)
         self.bottom.setLabel("bottom", "time before the newest frame", units="s")
         self.bottom.setLabel("left", "curvature", units="1/m")

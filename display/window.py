@@ -214,6 +214,7 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.status_label.setObjectName("status")
         self.notice_label = QtWidgets.QLabel("")
         self.notice_label.setObjectName("notice")
+        self.notice_label.setAlignment(QtCore.Qt.AlignRight | QtCore.Qt.AlignVCenter)
         # long texts must not widen the window past a laptop screen: they are cut instead
         for label in (self.status_label, self.notice_label):
             label.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
@@ -268,8 +269,9 @@ class SensorWindow(QtWidgets.QMainWindow):
             row.addWidget(self.time_label, 1)
             outer.addLayout(row)
         status_row = QtWidgets.QHBoxLayout()
-        status_row.addWidget(self.status_label, 1)
-        status_row.addWidget(self.notice_label, 0)
+        status_row.addWidget(self.status_label, 3)
+        status_row.addWidget(self.notice_label, 2)
+        self.notice_label.setVisible(False)
         outer.addLayout(status_row)
         outer.addWidget(self.caution_label)
         self.setCentralWidget(central)
@@ -289,8 +291,10 @@ class SensorWindow(QtWidgets.QMainWindow):
             self.bars.set_resistance_mode(lo, hi)
             self.traces.set_calibrated(False)
             self.shape.show_shape(None)
-            self.shape.set_message("no calibration loaded: shape unavailable — bars and traces show segment "
-                                   "resistance and channel codes")
+            self.shape.set_message(
+                "No calibration loaded: the shape cannot be drawn.\n"
+                "The bars show each segment's resistance (shaded: the healthy range of the rig file), the traces "
+                "the channels' ADC codes or segment resistances. Load a calibration with “Calibration…”.")
         self.tare_button.setEnabled(cal is not None)
 
     # -- drawing ----------------------------------------------------------------------------------------------
@@ -341,6 +345,7 @@ class SensorWindow(QtWidgets.QMainWindow):
     def notice(self, text: str, *, seconds: float = 8.0) -> None:
         """Show a message beside the status line for a while (errors, confirmations)."""
         self.notice_label.setText(text)
+        self.notice_label.setVisible(bool(text))
         self._notice_until = time.monotonic() + seconds
 
     def display_latency_s(self) -> float:
@@ -356,14 +361,14 @@ class SensorWindow(QtWidgets.QMainWindow):
             else:
                 parts.append("not recording")
             rate = st.get("frame_rate_hz", math.nan)
-            parts.append(f"{rate:7.1f} frames/s" if math.isfinite(rate) else "   -- frames/s")
+            parts.append(f"{rate:.1f} frames/s" if math.isfinite(rate) else "-- frames/s")
             parts.append(f"lost {st['frames_lost']}")
             parts.append(f"bad packets {st['bad_packets']}")
             parts.append(f"reconnects {st['reconnects']}")
             lat = self.display_latency_s()
             if not math.isfinite(lat):
                 lat = st.get("latency_s", math.nan)
-            parts.append(f"latency {lat * 1e3:4.0f} ms" if math.isfinite(lat) else "latency -- ms")
+            parts.append(f"latency {lat * 1e3:.0f} ms" if math.isfinite(lat) else "latency -- ms")
             if not st.get("connected", True):
                 parts.append("LINK DOWN")
             if st.get("label"):
@@ -372,7 +377,7 @@ class SensorWindow(QtWidgets.QMainWindow):
                 parts.append(f"RECORDING FAILED: {st['recorder_error']}")
         else:
             pos = st["position_s"]
-            parts.append(f"t {pos:9.3f} s of {st['duration_s']:.3f} s")
+            parts.append(f"t {pos:.3f} s of {st['duration_s']:.3f} s")
             parts.append(f"frame {self.source.position_index + 1} of {st['frames']}")
             parts.append(("▶ " if st["playing"] else "❚❚ ") + f"{st['speed']:g}×")
             if st.get("following"):
@@ -385,12 +390,13 @@ class SensorWindow(QtWidgets.QMainWindow):
         parts.append(f"calibration: {Path(cal).name if cal else 'none'}")
         if self.paused:
             parts.append("VIEW PAUSED")
-        return "  |  ".join(parts)
+        return "  ·  ".join(parts)
 
     def update_status(self) -> None:
         self.status_label.setText(self.status_text())
         if self._notice_until and time.monotonic() > self._notice_until:
             self.notice_label.setText("")
+            self.notice_label.setVisible(False)
             self._notice_until = 0.0
         if self.live:
             rec = self.source.recording

@@ -148,3 +148,11 @@ def test_inspect_bad_files(tmp_path):
     p.write_text("not a recording")
     assert_user_error(tapcurve("inspect", str(p)), str(p), "not an HDF5")
     assert_user_error(tapcurve("inspect", str(tmp_path / "gone.h5")), "gone.h5", "no such file")
+
+
+def test_refused_publish_address_leaves_no_file(device, tmp_path):
+    out = tmp_path / "x.h5"
+    r = tapcurve("record", "--port", device, "--rig", str(RIG), "--out", str(out), "--duration", "1",
+                 "--publish", "0.0.0.0:0")
+    assert_user_error(r, "0.0.0.0")
+    assert not out.exists()

@@ -111,3 +111,21 @@ def test_cable_pulled_device_kept_running(finger, tmp_path):
     assert reader.counters["reboots"] == 0
     # the frames the board made while no one listened are counted as lost, about 0.4 s worth
     assert 200 <= reader.counters["frames_lost"] <= 2000
+
+
+def test_host_stamps_are_monotonic_clock(finger):
+    """Host receive times come from CLOCK_MONOTONIC (Python's time.monotonic), which NTP steps,
+    daylight-saving changes and manual clock setting do not move (POSIX clock_gettime(2):
+    CLOCK_MONOTONIC "cannot be set"). A wall-clock stamp would fall outside this window."""
+    reader = SerialReader(port=finger.path)
+    before = time.monotonic()
+    reader.start()
+    try:
+        cur = reader.ring.cursor(from_oldest=True)
+        wait_for(lambda: cur.pending >= 300, 10, "frames")
+        block = cur.read()
+        after = time.monotonic()
+    finally:
+        reader.stop()
+    assert before <= block.t_host_s.min() and block.t_host_s.max() <= after
+    assert (np.diff(block.t_host_s) >= 0).all()
