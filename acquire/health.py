@@ -556,7 +556,7 @@ def _link_health(counters: dict, th: HealthThresholds) -> LinkHealth:
 # ----------------------------------------------------------------------------- text
 
 
-def format_health_table(report: HealthReport, *, width: int = 120) -> str:
+def format_health_table(report: HealthReport, *, width: int | None = None) -> str:
     """The report as a plain-text table (for ``tapcurve health --text``)."""
     lines = []
     head = (f"wiring health: {report.frames} frames, {report.window_s:.1f} s, "

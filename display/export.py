@@ -108,6 +108,8 @@ class ShapeFigure(QtWidgets.QWidget):
             outline = body_outline(snap.xy_m[None], thickness_above_m=self.rig.thickness_above_m,
                                    thickness_below_m=self.rig.thickness_below_m)[0]
         self.shape.show_shape(snap.xy_m, trail_xy_m=snap.trail_xy_m, outline_xy_m=outline)
+        parts = [snap.xy_m, np.zeros((1, 2))] + ([outline] if outline is not None else [])
+        self.shape.fit_to(np.concatenate(parts))
         self.bars.set_values(snap.curvature_per_m)
         k = ", ".join(f"{v:.1f}" for v in snap.curvature_per_m)
         tip = snap.xy_m[-1]

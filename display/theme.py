@@ -24,7 +24,7 @@ COLOURS = {
     "muted": "#8a96a8",
     "accent": "#5fb3b3",
     "sensor": "#f2b544",
-    "tip": "#f2b544",
+    "tip": "#f7e2ad",
     "tap": "#f6f7f9",
     "tap_edge": "#11161d",
     "body_fill": (78, 170, 160, 60),

@@ -63,7 +63,9 @@ class ShapeView(pg.PlotWidget):
         clamp_w = max(0.004, 0.08 * reach)
         clamp = QtWidgets.QGraphicsRectItem(-clamp_w, -(t_below + 0.002), clamp_w, t_above + t_below + 0.004)
         clamp.setPen(_pen(COLOURS["clamp"], 1))
-        clamp.setBrush(QtGui.QBrush(QtGui.QColor(COLOURS["clamp"]), QtCore.Qt.BDiagPattern))
+        fill = QtGui.QColor(COLOURS["clamp"])
+        fill.setAlpha(150)
+        clamp.setBrush(QtGui.QBrush(fill))
         plot.addItem(clamp)
         ref = pg.PlotDataItem([0.0, reach], [0.0, 0.0], pen=_pen(COLOURS["grid"], 1, QtCore.Qt.DotLine))
         plot.addItem(ref)
@@ -73,7 +75,7 @@ class ShapeView(pg.PlotWidget):
         self.body_item.setBrush(QtGui.QBrush(fill))
         self.body_item.setPen(_pen(COLOURS["body_edge"], 1.2))
         plot.addItem(self.body_item)
-        self.trail = pg.ScatterPlotItem(size=5, pen=None, antialias=True)
+        self.trail = pg.ScatterPlotItem(size=4, pen=None, antialias=True)
         plot.addItem(self.trail)
         self.tip_curve = pg.PlotDataItem(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
         plot.addItem(self.tip_curve)
@@ -108,6 +110,15 @@ class ShapeView(pg.PlotWidget):
             padding=0.02,
         )
         self.getPlotItem().disableAutoRange()
+
+    def fit_to(self, points_m: np.ndarray, *, margin: float = 0.12) -> None:
+        """Zoom to points (K, 2) m with a margin, equal axes kept (figures of one frame)."""
+        p = points_m[np.isfinite(points_m).all(axis=1)]
+        if p.shape[0] == 0:
+            return
+        lo, hi = p.min(axis=0), p.max(axis=0)
+        pad = margin * float(max(hi - lo))
+        self.getPlotItem().setRange(xRange=(lo[0] - pad, hi[0] + pad), yRange=(lo[1] - pad, hi[1] + pad), padding=0)
 
     def set_message(self, text: str) -> None:
         """A note over the plot (no calibration, reading unusable ...); empty hides it."""

@@ -200,7 +200,7 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.time_label = QtWidgets.QLabel("")
         self.time_label.setObjectName("status")
         self.label_list = QtWidgets.QListWidget()
-        self.label_list.setMaximumHeight(150)
+        self.label_list.setMaximumHeight(84)
         self.label_list.itemActivated.connect(self._label_chosen)
         self.label_list.itemClicked.connect(self._label_chosen)
         QtWidgets.QShortcut(QtGui.QKeySequence("Space"), self, activated=self.toggle_play)
