@@ -1,0 +1,99 @@
+"""Bad files on the command line: one line naming the problem, exit 2, no traceback, nothing changed."""
+from __future__ import annotations
+
+import hashlib
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+
+from acquire.frames import FrameBlock, FrameRing
+from acquire.recorder import Recorder
+from acquire.rig import load_rig
+
+REPO = Path(__file__).resolve().parents[2]
+
+
+def tapcurve(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "acquire.cli", *args], capture_output=True, text=True,
+                          timeout=60, cwd=REPO)
+
+
+def one_line_exit_2(res: subprocess.CompletedProcess, *words: str) -> None:
+    assert res.returncode == 2, (res.returncode, res.stderr)
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in res.stderr, res.stderr
+    for w in words:
+        assert w in lines[0], (w, lines[0])
+
+
+@pytest.fixture
+def recording(tmp_path) -> Path:
+    rig = load_rig(None)
+    ring = FrameRing(capacity_frames=10_000, n_channels=6)
+    path = tmp_path / "good.h5"
+    rec = Recorder(path=path, ring=ring, rig_toml=rig.text, device_hello=json.dumps({"channels": 6, "rate_hz": 1000}),
+                   channel_names=rig.channels)
+    rec.start()
+    seq = np.arange(5000)
+    ring.push(FrameBlock(codes=np.tile(np.array([3400, 2900, 2400, 1900, 1400, 900], np.uint16), (5000, 1)),
+                         seq=seq, t_device_s=seq * 1e-3, t_host_s=np.zeros(5000), status=np.zeros(5000, np.uint8)))
+    rec.stop()
+    return path
+
+
+def sha(p: Path) -> str:
+    return hashlib.sha256(p.read_bytes()).hexdigest()
+
+
+def test_truncated_recording(recording, tmp_path):
+    cut = tmp_path / "cut.h5"
+    data = recording.read_bytes()
+    cut.write_bytes(data[: len(data) // 2])
+    before = sha(cut)
+    one_line_exit_2(tapcurve("inspect", str(cut)), str(cut))
+    assert sha(cut) == before
+
+
+def test_foreign_hdf5(tmp_path):
+    p = tmp_path / "someone_elses.h5"
+    with h5py.File(p, "w") as f:
+        f["temperature"] = np.arange(10.0)
+    one_line_exit_2(tapcurve("inspect", str(p)), str(p), "not a tapcurve recording")
+
+
+def test_newer_layout(recording):
+    with h5py.File(recording, "r+") as f:
+        f.attrs["layout_version"] = 7
+    one_line_exit_2(tapcurve("inspect", str(recording)), "layout_version 7", "newer")
+
+
+def test_missing_dataset(recording):
+    with h5py.File(recording, "r+") as f:
+        del f["raw/seq"]
+    one_line_exit_2(tapcurve("inspect", str(recording)), "/raw/seq")
+
+
+@pytest.mark.parametrize(
+    "line, key",
+    [
+        ('r_ref_ohm = "10k"', "r_ref_ohm"),
+        ("r_ref_ohm = true", "r_ref_ohm"),
+        ('channels = "tap0 tap1"', "channels"),
+    ],
+)
+def test_rig_with_wrong_types(tmp_path, line, key):
+    rig = tmp_path / "typo.toml"
+    rig.write_text(
+        "[sensor]\nsegment_lengths_mm = [16.0, 16.0]\n[readout]\nkind = 'divider'\n"
+        + ("r_ref_ohm = 10000.0\n" if "r_ref" not in line else "")
+        + ("channels = ['tap0', 'tap1']\n" if "channels" not in line else "")
+        + line + "\n"
+    )
+    # the rig is read before any port is opened, so no device is needed to see the error
+    res = tapcurve("record", "--port", "/dev/null-not-a-port", "--rig", str(rig), "--out", str(tmp_path / "x.h5"))
+    one_line_exit_2(res, "typo.toml", key)
