@@ -804,7 +804,7 @@ def fit_calibration(
     holds: Sequence[Hold | tuple],
     *,
     rig: Rig,
-    degree: int = 2,
+    degree: int | tuple[int, int] = 2,
     on_non_monotone: str = "lower",
     recordings: Sequence[dict] = (),
     min_holds_per_side: int = 2,
@@ -819,8 +819,9 @@ def fit_calibration(
         (reference 0) per segment is required.
     rig : Rig
         The rig the recordings were made with.
-    degree : int
-        Highest polynomial degree per side (1..3 sensible).
+    degree : int or (int, int)
+        Highest polynomial degree per side (1..3 sensible); a pair gives the
+        positive and the negative side their own.
     on_non_monotone : {"lower", "refuse"}
         Lower the degree with a warning, or raise.
     recordings : sequence of dict
@@ -840,7 +841,9 @@ def fit_calibration(
     """
     if on_non_monotone not in ("lower", "refuse"):
         raise ValueError("on_non_monotone must be 'lower' or 'refuse'")
-    if degree < 1:
+    deg_pos, deg_neg = (degree, degree) if np.ndim(degree) == 0 else (degree[0], degree[1])
+    deg_pos, deg_neg = int(deg_pos), int(deg_neg)
+    if min(deg_pos, deg_neg) < 1:
         raise ValueError("degree must be at least 1")
     n_seg = rig.n_segments
     refs, means, counts, labels = [], [], [], []
@@ -900,7 +903,8 @@ def fit_calibration(
             if sel.sum() < min_holds_per_side:
                 warn.append(f"{side} side: only {int(sel.sum())} hold(s)")
             sides[side] = _fit_side(
-                x[sel], kap[sel], degree=degree, side=side, on_non_monotone=on_non_monotone, seg=k
+                x[sel], kap[sel], degree=deg_pos if side == "positive" else deg_neg, side=side,
+                on_non_monotone=on_non_monotone, seg=k,
             )
             warn.extend(sides[side][2])
         if sides["positive"] is None and sides["negative"] is None:

@@ -25,7 +25,7 @@ Threads: everything here runs in the calling (main) thread.
 from __future__ import annotations
 
 import datetime as _dt
-import json
+import errno
 import math
 import os
 import sys
@@ -58,6 +58,8 @@ from .rig import Rig, RigError, load_rig, parse_rig
 
 __all__ = [
     "HoldInfo",
+    "CalibrationRun",
+    "TareRun",
     "recording_rig",
     "check_recording_rig",
     "recording_rate_hz",
@@ -385,57 +387,76 @@ def _interior_references(refs: np.ndarray) -> list[tuple]:
     return out
 
 
-def _cv_rms(holds: Sequence[Hold], *, rig: Rig, degree: int, folds: list[tuple]) -> float:
-    """Leave-one-reference-out prediction RMS over all segments, 1/m (inf if a fold cannot be fitted)."""
+def _cv_errors(holds: Sequence[Hold], *, rig: Rig, degree: int, folds: list[tuple]) -> dict[str, float] | None:
+    """Leave-one-reference-out prediction RMS per side (``positive``, ``negative``), 1/m.
+
+    None if some fold cannot be fitted at this degree. The two sides are
+    fitted independently, so each side's error does not depend on the other's degree.
+    """
     refs = np.array([np.asarray(h.reference_per_m, dtype=np.float64) for h in holds])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # a segment NaN throughout a hold
         means = np.array([np.nanmean(h.resistance_ohm, axis=0) for h in holds])
     keys = [tuple(np.round(r, 9)) for r in refs]
-    sq, cnt = 0.0, 0
+    sq = {"positive": 0.0, "negative": 0.0}
+    cnt = {"positive": 0, "negative": 0}
     for key in folds:
         keep = [h for h, k in zip(holds, keys) if k != key]
         out = np.array([k == key for k in keys])
         try:
             cal, _ = fit_calibration(keep, rig=rig, degree=degree)
         except CalibrationError:
-            return math.inf
-        err = cal.curvature_per_m(means[out]) - refs[out]
-        ok = np.isfinite(err)
-        sq += float(np.sum(err[ok] ** 2))
-        cnt += int(ok.sum())
-    return math.sqrt(sq / cnt) if cnt else math.inf
+            return None
+        ref = refs[out]
+        err = cal.curvature_per_m(means[out]) - ref
+        for side, sel in (("positive", ref > 0), ("negative", ref < 0)):
+            ok = sel & np.isfinite(err)
+            sq[side] += float(np.sum(err[ok] ** 2))
+            cnt[side] += int(ok.sum())
+    return {side: math.sqrt(sq[side] / cnt[side]) if cnt[side] else math.nan for side in sq}
 
 
-def choose_degree(holds: Sequence[Hold], *, rig: Rig, max_degree: int = 3) -> tuple[int, dict[int, float]]:
-    """Pick the polynomial degree of the calibration by cross-validation.
+def choose_degree(
+    holds: Sequence[Hold], *, rig: Rig, max_degree: int = 3
+) -> tuple[tuple[int, int], dict[int, dict[str, float]]]:
+    """Pick the polynomial degree of each side of the calibration by cross-validation.
 
     For each degree 1 .. ``max_degree`` the fit is repeated leaving out the
     holds of one bent reference at a time (each reference that lies inside
     the range of the others: interpolation is what a calibration is used
-    for) and predicting them. The degree with the smallest prediction RMS
-    wins; a higher degree must beat the lower one by more than 5 %, so noise
-    does not buy flexibility. Without such a reference there is nothing to
-    cross-validate: degree 2 (:func:`fit_calibration` lowers it where a side
-    has fewer distinct references).
+    for) and predicting them. Per side (positive, negative bends), the degree
+    with the smallest prediction RMS wins; a higher degree must beat the lower
+    one by more than 5 %, so noise does not buy flexibility. A side without
+    such a reference gets degree 2 (:func:`fit_calibration` lowers it where
+    the side has fewer distinct references).
 
     Returns
     -------
-    (degree, cv_rms_per_m)
-        The degree, and the cross-validated RMS per degree tried, 1/m.
+    ((degree_positive, degree_negative), cv_rms_per_m)
+        The degrees, and per degree tried the cross-validated RMS of each
+        side, 1/m (NaN: nothing to predict on that side).
     """
     refs = np.array([np.asarray(h.reference_per_m, dtype=np.float64) for h in holds])
     folds = _interior_references(refs)
     if not folds:
-        return 2, {}
-    scores = {d: _cv_rms(holds, rig=rig, degree=d, folds=folds) for d in range(1, max_degree + 1)}
-    best = 1
-    for d in range(2, max_degree + 1):
-        if scores[d] < 0.95 * scores[best]:
-            best = d
-    if not math.isfinite(scores[best]):
-        best = 2
-    return best, scores
+        return (2, 2), {}
+    scores = {}
+    for d in range(1, max_degree + 1):
+        e = _cv_errors(holds, rig=rig, degree=d, folds=folds)
+        if e is not None:
+            scores[d] = e
+    chosen = []
+    for side in ("positive", "negative"):
+        tried = [d for d in sorted(scores) if math.isfinite(scores[d][side])]
+        if not tried:
+            chosen.append(2)
+            continue
+        best = tried[0]
+        for d in tried[1:]:
+            if scores[d][side] < 0.95 * scores[best][side]:
+                best = d
+        chosen.append(best)
+    return (chosen[0], chosen[1]), scores
 
 
 @dataclass
@@ -444,7 +465,7 @@ class CalibrationRun:
 
     calibration: Calibration
     report: FitReport
-    degree: int
+    degree: tuple[int, int]
     cv_rms_per_m: dict
     infos: list[HoldInfo]
     notes: list[str] = field(default_factory=list)
@@ -456,7 +477,7 @@ def calibrate_files(
     *,
     rig: Rig,
     table: dict | None = None,
-    degree: int | None = None,
+    degree: int | tuple[int, int] | None = None,
 ) -> CalibrationRun:
     """Fit a calibration from labelled recordings.
 
@@ -468,8 +489,8 @@ def calibrate_files(
         with it (:func:`check_recording_rig`).
     table : dict, optional
         A reference table (:func:`acquire.calibration.load_reference_table`).
-    degree : int, optional
-        Polynomial degree; default: :func:`choose_degree`.
+    degree : int or (int, int), optional
+        Polynomial degree (per side); default: :func:`choose_degree`.
 
     Raises
     ------
@@ -495,7 +516,8 @@ def calibrate_files(
             infos.extend(i)
             # hashed after opening: a recovered file's bytes are those it keeps from now on
             recordings.append({
-                "path": str(Path(f).resolve()),
+                "path": str(f),  # as given: the user's own context; the hash identifies the file
+                "name": Path(f).name,
                 "sha256": file_sha256(f),
                 "frames": n,
                 "holds": [x.label for x in i if x.used],
@@ -522,6 +544,7 @@ def calibrate_files(
     cv: dict = {}
     if degree is None:
         degree, cv = choose_degree(holds, rig=rig)
+    degree = (degree, degree) if np.ndim(degree) == 0 else (int(degree[0]), int(degree[1]))
     cal, report = fit_calibration(holds, rig=rig, degree=degree, recordings=recordings)
     return CalibrationRun(
         calibration=cal, report=report, degree=degree, cv_rms_per_m=cv, infos=infos, notes=notes,
@@ -549,16 +572,34 @@ def _check_new_output(out: Path, *, force: bool, inputs: Sequence[Path], what: s
         raise UserError(f"{out}: is a folder")
 
 
+def _publish(tmp: Path, out: Path, *, replace: bool) -> None:
+    """Give a complete temporary file its final name; an existing ``out`` only if ``replace``.
+
+    Raises FileExistsError when ``out`` exists and may not be replaced.
+    """
+    if replace:
+        os.replace(tmp, out)
+        return
+    try:
+        os.link(tmp, out)  # atomic, and fails if out appeared meanwhile
+    except FileExistsError:
+        raise
+    except OSError as exc:
+        if exc.errno not in (errno.EPERM, errno.EOPNOTSUPP, errno.ENOTSUP, errno.EXDEV, errno.EMLINK, errno.ENOSYS):
+            raise
+        # a file system without hard links (FAT, some network shares): check, then rename
+        if out.exists():
+            raise FileExistsError(errno.EEXIST, "exists", str(out)) from None
+        os.replace(tmp, out)
+
+
 def _write_text(out: Path, text: str, *, replace: bool) -> None:
     """Write a whole file, never leaving half of it; never replaces unless asked."""
     tmp = out.with_name(f".{out.name}.{os.getpid()}.tmp")
     try:
         with open(tmp, "x", encoding="utf-8") as fh:
             fh.write(text)
-        if replace:
-            os.replace(tmp, out)
-        else:
-            os.link(tmp, out)  # fails if out appeared meanwhile
+        _publish(tmp, out, replace=replace)
     except FileExistsError:
         raise UserError(f"{out}: exists; choose another --out") from None
     except OSError as exc:
@@ -606,13 +647,17 @@ def _print_calibration_report(run: CalibrationRun, out: Path, stream: TextIO) ->
             f"  {Path(i.file).name[:24]:24s}  {i.label[:24]:24s}  {span:17s}  {_format_ref(i.reference_per_m):>8s}  "
             f"{i.frames:6d}  {i.steady_frames:6d}  {'yes' if i.used else 'no'}{'  (' + i.note + ')' if i.note else ''}"
         )
+    dp, dn = run.degree
     if run.cv_rms_per_m:
-        scores = ", ".join(
-            f"degree {d}: {v:.3f}" if math.isfinite(v) else f"degree {d}: -" for d, v in run.cv_rms_per_m.items()
-        )
-        p(f"polynomial degree up to {run.degree}, chosen by leave-one-reference-out prediction RMS (1/m): {scores}")
+        p(f"polynomial degree up to {dp} (positive bends) / {dn} (negative bends), chosen by "
+          f"leave-one-reference-out prediction RMS, 1/m:")
+        for side in ("positive", "negative"):
+            cells = [
+                f"degree {d}: {e[side]:.3f}" for d, e in run.cv_rms_per_m.items() if math.isfinite(e[side])
+            ]
+            p(f"  {side}: {', '.join(cells) if cells else 'no reference inside the others to predict'}")
     else:
-        p(f"polynomial degree up to {run.degree} (no reference inside the others' range to cross-validate with)")
+        p(f"polynomial degree up to {dp} / {dn} (no reference inside the others' range to cross-validate with)")
     p("fit per segment (points: holds used; residual: model - reference at the hold means):")
     p("  segment  points  frames  range covered 1/m    rms residual 1/m  % of range  degree +/-")
     for sr in run.report.segments:
@@ -940,7 +985,7 @@ def process_recording(
                 a["tap_index"] = Reconstructor.from_rig(rig, spacing_m=SPACING_M).tap_index
             bar.close()
             try:
-                os.link(tmp, out)  # never replaces a file that appeared meanwhile
+                _publish(tmp, out, replace=False)  # never replaces a file that appeared meanwhile
             except FileExistsError:
                 raise UserError(f"{out}: exists; tapcurve never overwrites (choose another --out)") from None
             except OSError as exc:

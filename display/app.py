@@ -41,12 +41,23 @@ def display_available() -> tuple[bool, str]:
     return False, "no display: $DISPLAY and $WAYLAND_DISPLAY are unset and QT_QPA_PLATFORM is not set"
 
 
+#: Qt messages that say nothing to a user of tapcurve (the offscreen platform, a root session)
+_QUIET_QT = ("XDG_RUNTIME_DIR not set", "does not support propagateSizeHints")
+
+
+def _qt_message(mode, context, message) -> None:
+    if any(q in message for q in _QUIET_QT):
+        return
+    sys.stderr.write(f"Qt: {message}\n")
+
+
 def make_app():
-    """The QApplication (created once) with our pyqtgraph options."""
-    from PyQt5 import QtWidgets
+    """The QApplication (created once) with our pyqtgraph options; the caller keeps a reference."""
+    from PyQt5 import QtCore, QtWidgets
 
     from .theme import configure_pyqtgraph
 
+    QtCore.qInstallMessageHandler(_qt_message)
     app = QtWidgets.QApplication.instance()
     if app is None:
         app = QtWidgets.QApplication(["tapcurve"])
@@ -324,11 +335,12 @@ def _export(args) -> int:
     have_display, _ = display_available()
     if not have_display:
         os.environ["QT_QPA_PLATFORM"] = "offscreen"  # render without a screen
-    make_app()
+    app = make_app()  # held until the image is written: a collected QApplication takes Qt down with it
     from .export import export_recording_shape
 
     out = export_recording_shape(path=args.file, out=args.out, time_s=args.time, calibration=args.calibration)
     _say(f"wrote {out}")
+    del app
     return 0
 
 

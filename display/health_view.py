@@ -16,8 +16,16 @@ from .window import SAFETY_TEXT
 
 __all__ = ["HealthWindow", "COLUMNS"]
 
-COLUMNS = ("item", "mean code", "noise LSB", "noise mV", "hum LSB", "min", "max", "at limits %", "resistance",
-           "verdict", "reason")
+COLUMNS = ("item", "mean code", "noise LSB", "mV", "hum LSB", "min", "max", "at 0/FS %", "order %",
+           "R", "verdict", "reason")
+_TIPS = {
+    "noise LSB": "white-noise RMS from second differences, ADC steps",
+    "mV": "the same noise in millivolts of the excitation",
+    "hum LSB": "RMS of the 50 and 60 Hz components",
+    "at 0/FS %": "frames at code 0 or at full scale",
+    "order %": "frames where tap k+1 reads at or above tap k",
+    "R": "median segment resistance",
+}
 
 
 def _num(v, fmt) -> str:
@@ -76,6 +84,9 @@ class HealthWindow(QtWidgets.QMainWindow):
         rows = self.rig.n_channels + self.rig.n_segments + 1
         self.table = QtWidgets.QTableWidget(rows, len(COLUMNS))
         self.table.setHorizontalHeaderLabels(COLUMNS)
+        for i, name in enumerate(COLUMNS):
+            if name in _TIPS:
+                self.table.horizontalHeaderItem(i).setToolTip(_TIPS[name])
         self.table.verticalHeader().setVisible(False)
         self.table.setEditTriggers(QtWidgets.QAbstractItemView.NoEditTriggers)
         self.table.setSelectionMode(QtWidgets.QAbstractItemView.NoSelection)
@@ -117,18 +128,18 @@ class HealthWindow(QtWidgets.QMainWindow):
             self._row(r, f"channel {ch.index} · {ch.name}", [
                 _num(ch.mean_code, ".1f"), _num(ch.noise_lsb, ".2f"), _num(ch.noise_mv, ".2f"),
                 _num(ch.hum_lsb, ".1f"), str(ch.min_code), str(ch.max_code),
-                _num(ch.saturated_fraction * 100, ".1f"), "",
+                _num(ch.saturated_fraction * 100, ".1f"), "", "",
             ], ch.verdict, ch.reason)
             r += 1
         for seg in rep.segments:
             self._row(r, f"segment {seg.index} · tap {seg.index}–{seg.index + 1}", [
-                "", "", "", "", "", "", _num(seg.order_violated_fraction * 100, ".1f"),
+                "", "", "", "", "", "", "", _num(seg.order_violated_fraction * 100, ".1f"),
                 _fmt_ohm(seg.resistance_ohm),
             ], seg.verdict, seg.reason)
             r += 1
         ln = rep.link
         if ln is not None:
-            self._row(r, "link", ["", "", "", "", "", "", "", ""], ln.verdict,
+            self._row(r, "link", [""] * (len(COLUMNS) - 3), ln.verdict,
                       f"{ln.frames} frames, {ln.frames_lost} lost, {ln.bad_packets} bad packets, "
                       f"{ln.reconnects} reconnects" + ("" if ln.verdict == "ok" else f" — {ln.reason}"))
         bg, fg = VERDICT_COLOURS[rep.verdict]

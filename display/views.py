@@ -17,6 +17,22 @@ from .theme import COLOURS, series_colour
 __all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline"]
 
 
+def _text_symbol(text: str) -> QtGui.QPainterPath:
+    """A scatter symbol drawing ``text`` just above and right of its point (symbol units: 1 = size px)."""
+    path = QtGui.QPainterPath()
+    font = QtGui.QFont("Sans")
+    font.setPointSizeF(10)
+    path.addText(0, 0, font, text)
+    box = path.boundingRect()
+    scale = 0.9 / max(box.height(), 1e-9)
+    tr = QtGui.QTransform()
+    tr.scale(scale, scale)
+    path = tr.map(path)
+    box = path.boundingRect()
+    # centred in the unit square: pyqtgraph draws a symbol into a pixmap of that size
+    return path.translated(-box.center().x(), -box.center().y())
+
+
 def _pen(colour, width=1.0, style=QtCore.Qt.SolidLine):
     pen = pg.mkPen(colour, width=width)
     pen.setStyle(style)
@@ -85,12 +101,10 @@ class ShapeView(pg.PlotWidget):
             size=7, pen=_pen(COLOURS["tap_edge"], 1), brush=pg.mkBrush(COLOURS["tap"]), antialias=True
         )
         plot.addItem(self.taps)
-        self.tap_labels = []
-        for j in range(len(self.tap_index)):
-            item = pg.TextItem(str(j), color=COLOURS["muted"], anchor=(0.5, 1.3))
-            item.setFont(QtGui.QFont("Sans", 7))
-            plot.addItem(item)
-            self.tap_labels.append(item)
+        # tap numbers as scatter symbols (cached pixmaps): far cheaper per frame than text items
+        self.tap_labels = pg.ScatterPlotItem(size=11, pen=None, brush=pg.mkBrush(COLOURS["muted"]), antialias=True)
+        plot.addItem(self.tap_labels)
+        self._label_symbols = [_text_symbol(str(j)) for j in range(len(self.tap_index))]
         self._trail_brushes: dict[int, list] = {}
         self.message = ""
         # a label over the view, not in it: it stays put when the user pans or zooms
@@ -156,10 +170,9 @@ class ShapeView(pg.PlotWidget):
             self.sensor_curve.setData([], [])
             self.tip_curve.setData([], [])
             self.taps.setData([], [])
+            self.tap_labels.setData([], [])
             self.body_item.setPath(QtGui.QPainterPath())
             self.trail.setData([], [])
-            for item in self.tap_labels:
-                item.setVisible(False)
             return
         e = self.end_index
         self.sensor_curve.setData(xy_m[: e + 1, 0], xy_m[: e + 1, 1])
@@ -167,9 +180,9 @@ class ShapeView(pg.PlotWidget):
             self.tip_curve.setData(xy_m[e:, 0], xy_m[e:, 1])
         taps = xy_m[self.tap_index]
         self.taps.setData(taps[:, 0], taps[:, 1])
-        for item, (x, y) in zip(self.tap_labels, taps):
-            item.setVisible(True)
-            item.setPos(float(x), float(y))
+        # beside the tap, a fixed number of pixels up and right whatever the zoom
+        px, py = self.getPlotItem().getViewBox().viewPixelSize()
+        self.tap_labels.setData(taps[:, 0] + 7 * px, taps[:, 1] + 9 * py, symbol=self._label_symbols)
         if outline_xy_m is not None and np.isfinite(outline_xy_m).all():
             path = pg.arrayToQPath(outline_xy_m[:, 0], outline_xy_m[:, 1])
             path.closeSubpath()

@@ -55,7 +55,9 @@ class SensorWindow(QtWidgets.QMainWindow):
     source : LiveSession or ReplaySource
         Started (and, for a replay, ready).
     redraw_hz : float
-        Redraw timer rate.
+        Redraw timer rate (shape, bars).
+    traces_hz : float
+        Highest redraw rate of the rolling traces.
 
     Attributes
     ----------
@@ -74,7 +76,7 @@ class SensorWindow(QtWidgets.QMainWindow):
 
     closed = QtCore.pyqtSignal()
 
-    def __init__(self, *, source, redraw_hz: float = 60.0, parent=None):
+    def __init__(self, *, source, redraw_hz: float = 60.0, traces_hz: float = 30.0, parent=None):
         super().__init__(parent=parent)
         self.source = source
         self.live = bool(source.is_live)
@@ -88,6 +90,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         self._await_paint = None
         self._notice_until = 0.0
         self._closed_once = False
+        # the traces move by a bucket or two per redraw: drawing them at half the rate halves their cost
+        self._trace_interval_s = 1.0 / max(traces_hz, 1e-3) - 0.002
+        self._trace_pending = None
+        self._trace_t = 0.0
         self.setStyleSheet(STYLE_SHEET)
         name = self.rig.name or Path(self.rig.source).name
         what = "live" if self.live else f"replay — {Path(str(source.path)).name}"
@@ -253,7 +259,9 @@ class SensorWindow(QtWidgets.QMainWindow):
         rv.setContentsMargins(0, 0, 0, 0)
         rv.addWidget(self._titled("Rolling traces", self.traces), 1)
         if not self.live:
-            rv.addWidget(self._titled("Labelled intervals (click to jump)", self.label_list), 0)
+            box = self._titled("Labelled intervals (click to jump)", self.label_list)
+            box.setMaximumHeight(110)
+            rv.addWidget(box, 0)
         split.addWidget(right)
         split.setStretchFactor(0, 6)
         split.setStretchFactor(1, 5)
@@ -304,10 +312,20 @@ class SensorWindow(QtWidgets.QMainWindow):
         if self.paused:
             return
         snap = self.source.feed.snapshot(since_version=self._version)
-        if snap is None:
+        if snap is not None:
+            self._version = snap.version
+            self.draw_snapshot(snap)
+        self._draw_traces()
+
+    def _draw_traces(self, *, force: bool = False) -> None:
+        # at most traces_hz; the newest snapshot's traces are drawn at the latest one interval later
+        if self._trace_pending is None:
             return
-        self._version = snap.version
-        self.draw_snapshot(snap)
+        now = time.monotonic()
+        if force or now - self._trace_t >= self._trace_interval_s:
+            self.traces.show_traces(self._trace_pending)
+            self._trace_pending = None
+            self._trace_t = now
 
     def draw_snapshot(self, snap) -> None:
         calibrated = snap.curvature_per_m is not None
@@ -325,7 +343,7 @@ class SensorWindow(QtWidgets.QMainWindow):
             self.bars.set_values(snap.curvature_per_m)
         elif not calibrated and self.bars.mode == "resistance":
             self.bars.set_values(snap.filtered_ohm)
-        self.traces.show_traces(snap)
+        self._trace_pending = snap
         self.current = snap
         now = time.monotonic()
         self.drawn.append((snap.seq, snap.t_device_s, snap.t_host_s, now))

@@ -1,0 +1,131 @@
+"""Benchmark: the live window's cost beyond acquisition, and the latency from a packet's arrival to its frame on screen.
+
+Run by hand: ``.venv/bin/python bench/bench_live.py`` (``--quick`` for a short
+check). The built-in virtual finger sends 1,000 frames/s over its
+pseudo-terminal; the window redraws at 60 Hz on Qt's ``offscreen`` platform
+(raster painting, as on a screen without GPU help). Figures, printed as JSON:
+
+- ``acquisition_cpu_cores``: process CPU with the session running and no
+  window (reader, processing, and the virtual finger's device thread, which
+  lives in the same process here);
+- ``window_cpu_cores``: the extra CPU with the window open (process CPU minus
+  the acquisition figure), and ``gui_thread_cpu_cores``: CPU of the GUI thread
+  itself, measured directly. Target: at most 0.5 core;
+- ``latency_ms``: host arrival of the newest frame to the end of the paint
+  that showed it (median, 95th percentile, max). Target: at most two redraw
+  intervals (33 ms at 60 Hz).
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from pathlib import Path
+
+os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+import numpy as np  # noqa: E402
+
+
+def _calibration(rig):
+    from acquire.calibration import fit_calibration
+    from acquire.virtual import FingerModel
+
+    model = FingerModel(rig=rig, seed=0)
+    t = np.arange(200) / 1000.0
+    holds = [(float(k), model.with_hold(f"curvature={k}/m").segment_ohm(t)) for k in (-40, -20, 0, 20, 40, 80, 120)]
+    return fit_calibration(holds, rig=rig)[0]
+
+
+def _cpu_over(seconds: float, pump=None) -> tuple[float, float, float]:
+    """(process CPU s, GUI/main thread CPU s, wall s) over ``seconds``, running ``pump`` meanwhile."""
+    p0, t0, w0 = time.process_time(), time.thread_time(), time.monotonic()
+    if pump is None:
+        time.sleep(seconds)
+    else:
+        pump(seconds)
+    return time.process_time() - p0, time.thread_time() - t0, time.monotonic() - w0
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="short run (a check that the benchmark works)")
+    ap.add_argument("--seconds", type=float, default=None, help="measuring time per phase")
+    ap.add_argument("--redraw-hz", type=float, default=60.0)
+    args = ap.parse_args(argv)
+    seconds = args.seconds or (1.5 if args.quick else 10.0)
+
+    from PyQt5 import QtCore
+
+    from acquire.rig import load_rig
+    from acquire.session import LiveSession, VirtualOptions
+    from display.app import make_app
+    from display.window import SensorWindow
+
+    rig = load_rig(None)
+    cal = _calibration(rig)
+    app = make_app()
+    session = LiveSession(rig=rig, calibration=cal, virtual_options=VirtualOptions(rate_hz=1000.0))
+    session.start()
+    try:
+        time.sleep(0.5)  # let the stream settle
+        acq_cpu, _, acq_wall = _cpu_over(seconds)
+
+        window = SensorWindow(source=session, redraw_hz=args.redraw_hz)
+        window.resize(1366, 768)
+        window.show()
+
+        def pump(s):
+            loop = QtCore.QEventLoop()
+            QtCore.QTimer.singleShot(int(s * 1000), loop.quit)
+            loop.exec_()
+
+        pump(1.0)  # warm up: first paints, caches
+        window.draw_latency_s.clear()
+        drawn0 = len(window.drawn)
+        win_cpu, gui_cpu, win_wall = _cpu_over(seconds, pump)
+        drawn = len(window.drawn) - drawn0
+        lat = np.array(window.draw_latency_s) * 1e3
+        status = session.status()
+        window.close()
+    finally:
+        session.stop()
+
+    acq_cores = acq_cpu / acq_wall
+    total_cores = win_cpu / win_wall
+    interval_ms = 1000.0 / args.redraw_hz
+    out = {
+        "benchmark": "live window",
+        "quick": args.quick,
+        "seconds_per_phase": seconds,
+        "input_frames_per_s": round(status["frame_rate_hz"], 1),
+        "frames_lost": status["frames_lost"],
+        "redraw_hz_asked": args.redraw_hz,
+        "redraws_per_s": round(drawn / win_wall, 1),
+        "acquisition_cpu_cores": round(acq_cores, 3),
+        "with_window_cpu_cores": round(total_cores, 3),
+        "window_cpu_cores": round(total_cores - acq_cores, 3),
+        "gui_thread_cpu_cores": round(gui_cpu / win_wall, 3),
+        "window_cpu_target_cores": 0.5,
+        "latency_ms": {
+            "median": round(float(np.median(lat)), 1) if lat.size else None,
+            "p95": round(float(np.percentile(lat, 95)), 1) if lat.size else None,
+            "max": round(float(lat.max()), 1) if lat.size else None,
+            "samples": int(lat.size),
+        },
+        "latency_target_ms": round(2 * interval_ms, 1),
+        "qt_platform": os.environ.get("QT_QPA_PLATFORM"),
+        "cpus": os.cpu_count(),
+    }
+    out["meets_cpu_target"] = out["gui_thread_cpu_cores"] <= 0.5 and out["window_cpu_cores"] <= 0.5
+    out["meets_latency_target"] = bool(lat.size) and out["latency_ms"]["median"] <= 2 * interval_ms
+    print(json.dumps(out, indent=1))
+    del app
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

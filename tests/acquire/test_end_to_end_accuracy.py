@@ -1,0 +1,212 @@
+"""End to end on the virtual finger, through the serial path, against the finger's ground truth.
+
+The virtual finger runs on a real pseudo-terminal. Labelled holds on jigs of
+known curvature are recorded through SerialReader -> FrameRing -> Recorder
+(labels placed as a person pressing label buttons would); the finger then
+moves (the grasp scenario, made up for the demo: a greenhouse tomato-picking
+gripper) and `tapcurve record` records it; `tapcurve calibrate` fits the
+holds and `tapcurve process` (causal, and `--zero-phase`) reconstructs the
+moving recording. The device's truth file holds, per frame, the exact mean
+curvature of each segment and the end point of the sensor from its elastica
+model: the reference here (an outside model in the sense that the host side
+never sees it: only codes cross the pty).
+
+Figures: tip (sensor end) error in % of the sensor length, mean and max, and
+RMS curvature error per segment, printed as a table (``pytest -s``).
+Requirement: mean tip error <= 1.5 % of the length; goal 0.75 % (project
+targets, no outside source). The causal live filters delay the estimate by
+about the spike median's (W - 1) / 2 frames plus the Butterworth low-pass's
+group delay (computed here with ``scipy.signal.group_delay``, the reference
+implementation); the lag that minimises the causal error is checked against
+that prediction.
+"""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+from scipy import signal
+
+from acquire.reader import SerialReader
+from acquire.recorder import Recorder
+from acquire.rig import load_rig
+from acquire.virtual import VirtualFinger
+
+REPO = Path(__file__).resolve().parents[2]
+RIG_PATH = REPO / "acquire" / "rigs" / "demo_finger.toml"
+RATE_HZ = 1000.0
+TIME_SCALE = 4.0  # device seconds per wall second: the holds take a quarter of their device time
+HOLD_S = 1.5
+SETTLE_S = 0.3
+MOVING_S = 16.0
+HOLDS = ["flat", "curvature=15/m", "radius=40mm", "radius=25mm", "radius=20mm", "flat",
+         "radius=-100mm", "curvature=-15/m", "radius=-40mm", "flat"]
+
+
+def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "acquire.cli", *args], capture_output=True, text=True,
+                          timeout=timeout_s, cwd=REPO)
+
+
+def wait_frames(ring, n: int, *, timeout_s: float = 30.0) -> None:
+    """Wait (bounded) until ``n`` more frames have arrived in the ring."""
+    target = ring.written + n
+    deadline = time.monotonic() + timeout_s
+    while ring.written < target:
+        left = deadline - time.monotonic()
+        if left <= 0:
+            raise TimeoutError(f"only {ring.written} of {target} frames arrived")
+        ring.wait(ring.written, min(left, 0.5))
+
+
+def newest_time_s(ring) -> float:
+    return float(ring.latest(1).t_device_s[0])
+
+
+@pytest.fixture(scope="module")
+def session(tmp_path_factory):
+    d = tmp_path_factory.mktemp("e2e")
+    rig = load_rig(RIG_PATH)
+    dev = VirtualFinger(rig=rig, rate_hz=RATE_HZ, seed=7, hold="flat", time_scale=TIME_SCALE,
+                        truth_path=d / "truth.h5")
+    dev.start()
+    try:
+        reader = SerialReader(port=dev.path)
+        reader.start()
+        rec = Recorder(path=d / "holds.h5", ring=reader.ring, rig_toml=rig.text,
+                       device_hello=json.dumps(reader.hello), channel_names=rig.channels,
+                       events=reader.events, counters=reader.all_counters, n_segments=rig.n_segments)
+        rec.start()
+        try:
+            wait_frames(reader.ring, int(0.2 * RATE_HZ))
+            for label in HOLDS:
+                dev.set_hold(label)  # the finger goes onto the next jig
+                wait_frames(reader.ring, int(SETTLE_S * RATE_HZ))
+                t0 = newest_time_s(reader.ring)
+                wait_frames(reader.ring, int(HOLD_S * RATE_HZ))
+                rec.add_label(label, t_start_s=t0, t_end_s=newest_time_s(reader.ring))
+            dev.set_hold(None)  # off the jig: the grasp scenario plays
+        finally:
+            rec.stop()
+            reader.stop()
+        holds_counters = reader.all_counters()
+        r = tapcurve("record", "--port", dev.path, "--rig", str(RIG_PATH), "--out", str(d / "grasp.h5"),
+                     "--duration", str(MOVING_S), "--label", "grasp (moving)", "--quiet")
+        assert r.returncode == 0, r.stderr
+    finally:
+        dev.stop()
+    assert rec.error is None
+    r = tapcurve("calibrate", str(d / "holds.h5"), "--rig", str(RIG_PATH), "--out", str(d / "cal.json"))
+    assert r.returncode == 0, r.stderr
+    calibrate_report = r.stdout
+    for name, extra in (("causal", ()), ("zero-phase", ("--zero-phase",))):
+        r = tapcurve("process", str(d / "grasp.h5"), "--calibration", str(d / "cal.json"),
+                     "--out", str(d / f"{name}.h5"), "--quiet", *extra)
+        assert r.returncode == 0, r.stderr
+    return {"dir": d, "rig": rig, "holds_counters": holds_counters, "calibrate_report": calibrate_report}
+
+
+def truth_of(d: Path, seq: np.ndarray, codes: np.ndarray) -> dict:
+    """The truth rows of the recorded frames: same boot, same sequence number, same codes."""
+    with h5py.File(d / "truth.h5", "r") as t:
+        boot = t["boot"][:]
+        tseq = t["seq"][:]
+        sel = np.flatnonzero(boot == 1)
+        order = sel[np.argsort(tseq[sel])]
+        idx = order[np.searchsorted(tseq[order], seq)]
+        assert np.array_equal(tseq[idx], seq)
+        # the frames crossed the pty bit for bit: the alignment is exact
+        assert np.array_equal(t["codes"][:][idx], codes)
+        return {"curvature_per_m": t["curvature_per_m"][:][idx], "tip_xy_m": t["tip_xy_m"][:][idx]}
+
+
+def figures(d: Path, name: str) -> dict:
+    with h5py.File(d / "grasp.h5", "r") as f:
+        seq = f["raw/seq"][:]
+        codes = f["raw/adc"][:]
+    truth = truth_of(d, seq, codes)
+    with h5py.File(d / f"{name}.h5", "r") as f:
+        tap_end = int(f["derived"].attrs["tap_index"][-1])
+        length = float(f["derived/s_m"][tap_end])
+        tip = f["derived/xy"][:, tap_end, :].astype(np.float64)
+        curv = f["derived/curvature"][:].astype(np.float64)
+    err = np.hypot(*(tip - truth["tip_xy_m"]).T)
+    # the delay that fits best: estimate at frame i + lag against the truth at frame i
+    lags = np.arange(0, 31)
+    by_lag = [np.mean(np.hypot(*(tip[lag:] - truth["tip_xy_m"][: tip.shape[0] - lag]).T)) for lag in lags]
+    best = int(lags[int(np.argmin(by_lag))])
+    return {
+        "frames": int(seq.shape[0]),
+        "length_m": length,
+        "tip_mean_pct": 100.0 * float(err.mean()) / length,
+        "tip_max_pct": 100.0 * float(err.max()) / length,
+        "curvature_rms_per_m": np.sqrt(np.mean((curv - truth["curvature_per_m"]) ** 2, axis=0)),
+        "best_lag_frames": best,
+        "tip_mean_pct_at_best_lag": 100.0 * float(by_lag[best]) / length,
+        "truth_curvature_range": (float(truth["curvature_per_m"].min()), float(truth["curvature_per_m"].max())),
+    }
+
+
+def predicted_lag_frames(rig) -> float:
+    """Spike median (W - 1) / 2 frames plus the low-pass's group delay near DC."""
+    b, a = signal.butter(rig.lowpass_order, rig.lowpass_hz, btype="low", fs=RATE_HZ)
+    _, gd = signal.group_delay((b, a), w=[0.5], fs=RATE_HZ)  # samples, at 0.5 Hz (the grasp's pace)
+    return (rig.spike_window - 1) / 2 + float(gd[0])
+
+
+def test_serial_path_lost_nothing(session):
+    c = session["holds_counters"]
+    assert c["frames_lost"] == 0 and sum(v for k, v in c.items() if k.startswith("drop_")) == 0
+    with h5py.File(session["dir"] / "grasp.h5", "r") as f:
+        assert f["raw/seq"].shape[0] == int(MOVING_S * RATE_HZ)
+        assert (np.diff(f["raw/seq"][:]) == 1).all()
+
+
+def test_calibration_fits_the_holds(session):
+    doc = json.loads((session["dir"] / "cal.json").read_text())
+    for seg in doc["fit_report"]["segments"]:
+        assert seg["n_holds"] == len(HOLDS)
+        assert seg["curvature_min_per_m"] == pytest.approx(-25.0)  # radius=-40mm
+        assert seg["curvature_max_per_m"] == pytest.approx(50.0)  # radius=20mm
+        assert seg["rms_residual_per_m"] < 0.2
+
+
+def test_tip_accuracy_against_ground_truth(session):
+    rig = session["rig"]
+    causal = figures(session["dir"], "causal")
+    zero = figures(session["dir"], "zero-phase")
+    predicted = predicted_lag_frames(rig)
+    lines = [
+        "",
+        f"virtual finger, grasp scenario: {causal['frames']} frames at {RATE_HZ:g} Hz, sensor "
+        f"{1000 * causal['length_m']:.0f} mm, truth curvature {causal['truth_curvature_range'][0]:+.1f} .. "
+        f"{causal['truth_curvature_range'][1]:+.1f} 1/m",
+        "filters      tip mean %L  tip max %L  best lag frames  tip mean %L at best lag",
+    ]
+    for name, f in (("causal", causal), ("zero-phase", zero)):
+        lines.append(f"{name:11s}  {f['tip_mean_pct']:11.3f}  {f['tip_max_pct']:10.3f}  {f['best_lag_frames']:15d}  "
+                     f"{f['tip_mean_pct_at_best_lag']:23.3f}")
+    lines.append(f"predicted causal delay {predicted:.1f} frames (median + Butterworth group delay)")
+    lines.append("curvature RMS error per segment, 1/m:")
+    lines.append("segment      " + "  ".join(f"{k:6d}" for k in range(rig.n_segments)))
+    for name, f in (("causal", causal), ("zero-phase", zero)):
+        lines.append(f"{name:11s}  " + "  ".join(f"{v:6.3f}" for v in f["curvature_rms_per_m"]))
+    print("\n".join(lines))
+
+    # the requirement and the goal (project targets)
+    assert causal["tip_mean_pct"] <= 1.5
+    assert zero["tip_mean_pct"] <= 0.75
+    # the causal error is mostly the filters' delay: it fits best at the predicted lag,
+    # and there it is as small as the zero-phase one (within 0.2 % of the length)
+    assert abs(causal["best_lag_frames"] - predicted) <= 3
+    assert causal["tip_mean_pct_at_best_lag"] <= zero["tip_mean_pct"] + 0.2
+    # zero-phase filtering has no delay (Gustafsson, IEEE Trans. Signal Processing, 1996)
+    assert zero["best_lag_frames"] <= 1
+    assert np.all(zero["curvature_rms_per_m"] < 0.3)
+    assert np.all(causal["curvature_rms_per_m"] < 0.6)
