@@ -66,20 +66,43 @@ def make_app():
     return app
 
 
-def exec_app(app, *, duration_s: float | None = None) -> bool:
-    """Run the Qt event loop until the last window closes, SIGINT/SIGTERM, or ``duration_s``.
+class _StopOnSignal:
+    """SIGINT/SIGTERM set :attr:`event` (and quit a running Qt loop) instead of raising.
 
-    Returns True if a signal ended it.
+    Installed for the whole command, from before the session starts, so a
+    Ctrl-C while the window is still being built stops as cleanly as one later.
+    """
+
+    def __init__(self):
+        self.event = threading.Event()
+        self.app = None
+        self._old = {}
+
+    def _on_signal(self, signum, frame) -> None:
+        self.event.set()
+        if self.app is not None:
+            self.app.quit()
+
+    def __enter__(self):
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            self._old[sig] = signal.signal(sig, self._on_signal)
+        return self
+
+    def __exit__(self, *exc):
+        for sig, old in self._old.items():
+            signal.signal(sig, old)
+
+
+def exec_app(app, *, stop: _StopOnSignal, duration_s: float | None = None) -> bool:
+    """Run the Qt event loop until the last window closes, a signal, or ``duration_s``.
+
+    Returns True if a signal ended it (or came before it started).
     """
     from PyQt5 import QtCore
 
-    interrupted = threading.Event()
-
-    def on_signal(signum, frame):
-        interrupted.set()
-        app.quit()
-
-    old = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
+    if stop.event.is_set():
+        return True
+    stop.app = app
     # Qt's loop is C++: without a periodic return to Python a signal waits for the next event
     wake = QtCore.QTimer()
     wake.timeout.connect(lambda: None)
@@ -87,29 +110,12 @@ def exec_app(app, *, duration_s: float | None = None) -> bool:
     if duration_s is not None:
         QtCore.QTimer.singleShot(int(duration_s * 1000), app.quit)
     try:
-        app.exec_()
+        if not stop.event.is_set():
+            app.exec_()
     finally:
         wake.stop()
-        for sig, handler in old.items():
-            signal.signal(sig, handler)
-    return interrupted.is_set()
-
-
-class _StopOnSignal:
-    """SIGINT/SIGTERM set an event instead of raising (headless loops)."""
-
-    def __init__(self):
-        self.event = threading.Event()
-        self._old = {}
-
-    def __enter__(self):
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            self._old[sig] = signal.signal(sig, lambda *_: self.event.set())
-        return self
-
-    def __exit__(self, *exc):
-        for sig, old in self._old.items():
-            signal.signal(sig, old)
+        stop.app = None
+    return stop.event.is_set()
 
 
 def _say(text: str) -> None:
@@ -154,7 +160,7 @@ def _check_new_file(path: str | None, option: str) -> Path | None:
     return p
 
 
-def _live(args) -> int:
+def _live(args, stop: _StopOnSignal) -> int:
     from acquire.rig import load_rig
     from acquire.session import LiveSession, load_calibration_for, virtual_options_from_args
 
@@ -189,10 +195,10 @@ def _live(args) -> int:
 
             window = SensorWindow(source=session)
             window.show()
-            exec_app(app, duration_s=args.duration)
+            exec_app(app, stop=stop, duration_s=args.duration)
             window.close()
         else:
-            _live_headless(session, duration_s=args.duration)
+            _live_headless(session, stop=stop, duration_s=args.duration)
     finally:
         try:
             summary = session.stop_recording()
@@ -212,22 +218,30 @@ def _report_recording(summary) -> int:
     return 0
 
 
-def _live_headless(session, *, duration_s: float | None) -> None:
+def _tick(stop: _StopOnSignal, started: float, duration_s: float | None) -> bool:
+    """Wait up to a second (less at the end of ``duration_s``); False when it is time to stop."""
+    wait = 1.0
+    if duration_s is not None:
+        left = started + duration_s - time.monotonic()
+        if left <= 0:
+            return False
+        wait = min(wait, left)
+    return not stop.event.wait(wait)
+
+
+def _live_headless(session, *, stop: _StopOnSignal, duration_s: float | None) -> None:
     tty = sys.stderr.isatty()
     started = time.monotonic()
-    with _StopOnSignal() as stop:
-        while not stop.event.wait(1.0):
-            st = session.status()
-            line = live_status_line(st)
-            if tty:
-                sys.stderr.write("\r" + line[:200].ljust(120))
-            else:
-                sys.stderr.write(line + "\n")
-            sys.stderr.flush()
-            if st.get("recorder_error"):
-                break
-            if duration_s is not None and time.monotonic() - started >= duration_s:
-                break
+    while _tick(stop, started, duration_s):
+        st = session.status()
+        line = live_status_line(st)
+        if tty:
+            sys.stderr.write("\r" + line[:200].ljust(120))
+        else:
+            sys.stderr.write(line + "\n")
+        sys.stderr.flush()
+        if st.get("recorder_error"):
+            break
     if tty:
         sys.stderr.write("\n")
 
@@ -235,7 +249,7 @@ def _live_headless(session, *, duration_s: float | None) -> None:
 # ----------------------------------------------------------------------------- replay
 
 
-def _replay(args) -> int:
+def _replay(args, stop: _StopOnSignal) -> int:
     from acquire.session import ReplaySource
 
     if not 0.1 <= args.speed <= 20.0:
@@ -258,34 +272,31 @@ def _replay(args) -> int:
 
             window = SensorWindow(source=src)
             window.show()
-            exec_app(app, duration_s=args.duration)
+            exec_app(app, stop=stop, duration_s=args.duration)
             window.close()
         else:
-            _replay_headless(src, duration_s=args.duration)
+            _replay_headless(src, stop=stop, duration_s=args.duration)
     finally:
         src.stop()
     return 0
 
 
-def _replay_headless(src, *, duration_s: float | None) -> None:
+def _replay_headless(src, *, stop: _StopOnSignal, duration_s: float | None) -> None:
     started = time.monotonic()
-    with _StopOnSignal() as stop:
-        while not stop.event.wait(1.0):
-            st = src.status()
-            labels = [lab.text for lab in src.labels if lab.t_start_s <= src.position_s <= lab.t_end_s]
-            line = (f"t {st['position_s']:.3f} / {st['duration_s']:.3f} s | frame {src.position_index + 1} of "
-                    f"{st['frames']} | {st['speed']:g}×" + (f" | label {', '.join(labels)}" if labels else ""))
-            print(line, file=sys.stderr, flush=True)
-            if not st["playing"] and not src.follow:
-                break
-            if duration_s is not None and time.monotonic() - started >= duration_s:
-                break
+    while _tick(stop, started, duration_s):
+        st = src.status()
+        labels = [lab.text for lab in src.labels if lab.t_start_s <= src.position_s <= lab.t_end_s]
+        line = (f"t {st['position_s']:.3f} / {st['duration_s']:.3f} s | frame {src.position_index + 1} of "
+                f"{st['frames']} | {st['speed']:g}×" + (f" | label {', '.join(labels)}" if labels else ""))
+        print(line, file=sys.stderr, flush=True)
+        if not st["playing"] and not src.follow:
+            break
 
 
 # ----------------------------------------------------------------------------- health
 
 
-def _health(args) -> int:
+def _health(args, stop: _StopOnSignal) -> int:
     from acquire.health import HealthMonitor, format_health_table
     from acquire.rig import load_rig
     from acquire.session import LiveSession, virtual_options_from_args
@@ -305,7 +316,7 @@ def _health(args) -> int:
 
             window = HealthWindow(session=session, window_s=args.window)
             window.show()
-            exec_app(app, duration_s=args.duration)
+            exec_app(app, stop=stop, duration_s=args.duration)
             window.close()
         else:
             monitor = HealthMonitor(cursor=session.cursor(), rig=rig, adc_bits=session.adc_bits,
@@ -313,16 +324,13 @@ def _health(args) -> int:
                                     window_s=args.window)
             tty = sys.stdout.isatty()
             started = time.monotonic()
-            with _StopOnSignal() as stop:
-                while not stop.event.wait(1.0):
-                    monitor.update()
-                    table = format_health_table(monitor.report())
-                    if tty:
-                        sys.stdout.write("\x1b[H\x1b[J")  # redraw in place
-                    sys.stdout.write(table + "\n\n")
-                    sys.stdout.flush()
-                    if args.duration is not None and time.monotonic() - started >= args.duration:
-                        break
+            while _tick(stop, started, args.duration):
+                monitor.update()
+                table = format_health_table(monitor.report())
+                if tty:
+                    sys.stdout.write("\x1b[H\x1b[J")  # redraw in place
+                sys.stdout.write(table + "\n\n")
+                sys.stdout.flush()
     finally:
         session.stop()
     return 0
@@ -331,7 +339,7 @@ def _health(args) -> int:
 # ----------------------------------------------------------------------------- export
 
 
-def _export(args) -> int:
+def _export(args, stop: _StopOnSignal) -> int:
     have_display, _ = display_available()
     if not have_display:
         os.environ["QT_QPA_PLATFORM"] = "offscreen"  # render without a screen
@@ -358,4 +366,5 @@ def run_command(args) -> int:
     handler = _COMMANDS.get(args.command)
     if handler is None:
         raise UserError(f"{args.command}: not a display command")
-    return int(handler(args) or 0)
+    with _StopOnSignal() as stop:
+        return int(handler(args, stop) or 0)

@@ -176,6 +176,9 @@ def test_calibrate_recovers_the_law(calibration, holds_file):
     for kappa in (-25.0, -10.0, -4.0, 5.0, 15.0, 25.0, 35.0, 40.0):
         r = R0 * (1.0 + x_of_curvature(kappa))
         np.testing.assert_allclose(cal.curvature_per_m(r[None, :])[0], kappa, atol=0.15)
+    # cross-validation finds the law's own degrees: quadratic for positive bends, linear for negative
+    assert "degree up to 2 (positive bends) / 1 (negative bends)" in run.stdout
+    assert all((s["degree_positive"], s["degree_negative"]) == (2, 1) for s in doc["fit_report"]["segments"])
     # provenance: the recording's and the rig's SHA-256, computed here with hashlib
     assert doc["recordings"][0]["sha256"] == sha256(holds_file)
     assert doc["recordings"][0]["path"] == str(holds_file)
