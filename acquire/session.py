@@ -877,6 +877,12 @@ class LiveSession:
 # ----------------------------------------------------------------------------- replay
 
 
+#: a followed file is shown this far behind its newest frame (the recorder flushes every 0.25 s, so the
+#: motion stays smooth) once the play head is within _FOLLOW_EDGE_S of the end
+_FOLLOW_DELAY_S = 0.3
+_FOLLOW_EDGE_S = 2.0
+
+
 @dataclass(frozen=True)
 class _LabelInfo:
     text: str
@@ -1281,7 +1287,7 @@ class ReplaySource:
                         self._handle(r)
             now = time.monotonic()
             if self.follow and now >= next_refresh:
-                next_refresh = now + 0.25
+                next_refresh = now + 0.1
                 self._update_extent()
             if not self._playing:
                 last = now
@@ -1290,6 +1296,9 @@ class ReplaySource:
                 play_t, last = self._head_t, now
             play_t += (now - last) * self._speed
             last = now
+            if self.follow and self._t_last - self._head_t < _FOLLOW_EDGE_S:
+                # at the growing end: stay a little behind the newest frame on disk, never further
+                play_t = max(play_t, self._t_last - _FOLLOW_DELAY_S)
             if self._head < self._n_frames:
                 self._play_until(play_t)
             elif self.follow:

@@ -140,11 +140,11 @@ def test_zero_phase_handles_nan_runs():
 
 
 def test_cutoff_above_nyquist_is_a_user_error():
-    rig = load_rig(None)  # 25 Hz low-pass
+    rig = load_rig(None)  # the demo rig: 40 Hz low-pass, needs more than 80 Hz sampling
     with pytest.raises(UserError, match="lowpass_hz"):
         FilterChain.from_rig(rig, rate_hz=40.0, n_signals=6)
     chain = FilterChain.from_rig(rig, rate_hz=RATE, n_signals=6)
-    assert chain.lowpass.enabled and chain.spike.window == 5
+    assert chain.lowpass.enabled and chain.spike.window == rig.spike_window
 
 
 def test_reset_forgets_state():
