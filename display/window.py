@@ -496,7 +496,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         except UserError as exc:
             self.notice(str(exc))
             return
-        self.notice("tared: the present shape is now flat")
+        text = "tared: the present shape is now flat"
+        if self.live and self.source.recording:
+            text += " (noted in the recording; its /derived keeps the calibration it started with)"
+        self.notice(text)
 
     def _calibration_clicked(self) -> None:
         path, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Load a calibration", "", "Calibration (*.json)")
@@ -509,7 +512,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         except UserError as exc:
             self.notice(str(exc))
             return False
-        self.notice(f"calibration {Path(path).name} loaded" + (f" ({'; '.join(notes)})" if notes else ""))
+        text = f"calibration {Path(path).name} loaded" + (f" ({'; '.join(notes)})" if notes else "")
+        if self.live and self.source.recording:
+            text += "; the recording keeps the calibration it started with"
+        self.notice(text)
         self._configure_calibration()
         return True
 

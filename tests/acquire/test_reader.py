@@ -11,7 +11,6 @@ from acquire.reader import SerialReader
 from acquire.recorder import Recorder
 from acquire.recording import open_recording
 from acquire.rig import load_rig
-from acquire.virtual import VirtualFinger
 
 
 def wait_for(predicate, timeout_s: float, what: str) -> None:
@@ -20,15 +19,6 @@ def wait_for(predicate, timeout_s: float, what: str) -> None:
         if time.monotonic() > deadline:
             pytest.fail(f"timed out waiting for {what}")
         time.sleep(0.01)
-
-
-@pytest.fixture
-def finger(tmp_path):
-    vf = VirtualFinger(rate_hz=1000, link_path=tmp_path / "finger")
-    vf.start()
-    assert vf.wait_ready(timeout_s=10)
-    yield vf
-    vf.stop()
 
 
 def test_handshake_stream_and_rate(finger):

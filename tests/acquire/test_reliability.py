@@ -31,15 +31,6 @@ def record_cmd(port: str, out: Path, *extra: str) -> list[str]:
             "--quiet", *extra]
 
 
-@pytest.fixture
-def finger(tmp_path):
-    vf = VirtualFinger(rate_hz=1000, link_path=tmp_path / "finger")
-    vf.start()
-    assert vf.wait_ready(timeout_s=10)
-    yield vf
-    vf.stop()
-
-
 def wait_for_file(path: Path, proc: subprocess.Popen, timeout_s: float) -> None:
     deadline = time.monotonic() + timeout_s
     while not path.exists():
