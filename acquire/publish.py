@@ -335,6 +335,7 @@ class ShapePublisher:
         self._last_counters: dict = {}
         self._dropped_closed = 0
         self.error: str | None = None
+        self._new_calibration: tuple | None = None
         self._prepare_formats()
 
     @classmethod
@@ -483,6 +484,31 @@ class ShapePublisher:
             self._fmt_xy = "[" + ",".join(["[%.7f,%.7f]"] * self._n_points) + "]"
             self._s_m_part = ',"s_m":' + json.dumps([round(float(v), 7) for v in s_m], separators=(",", ":"))
 
+    def set_calibration(self, calibration) -> None:
+        """Use ``calibration`` (a new one, or a tared one) from the next frames on.
+
+        Any thread; the publisher thread picks it up between blocks, so no
+        message mixes two calibrations. Shapes start appearing in the messages
+        if there was no calibration before.
+        """
+        if calibration is not None and self.rig is None:
+            raise ValueError("a calibration needs the rig")
+        self._new_calibration = (calibration,)
+
+    def _apply_new_calibration(self) -> None:
+        pending, self._new_calibration = self._new_calibration, None
+        (calibration,) = pending
+        self.calibration = calibration
+        if calibration is None:
+            self._pipeline = None
+        elif self._pipeline is not None:
+            self._pipeline.set_calibration(calibration)
+        else:
+            from .pipeline import Pipeline
+
+            self._pipeline = Pipeline(rig=self.rig, calibration=calibration, rate_hz=self.rate_hz, adc_bits=self.adc_bits)
+        self._prepare_formats()
+
     # -- publisher thread ----------------------------------------------------------------------
     def _run(self) -> None:
         try:
@@ -493,6 +519,8 @@ class ShapePublisher:
                     self._service(timeout_s)  # no more frames: just serve the sockets
                     continue
                 self._cursor.wait(timeout_s)
+                if self._new_calibration is not None:  # checked after the wait: frames read now get it
+                    self._apply_new_calibration()
                 block = self._cursor.read(max_frames=max(1000, int(self.rate_hz * 0.1)))
                 if len(block):
                     self._publish(block)

@@ -63,6 +63,7 @@ class Rig:
     tip_length_m: float
     tip_mode: str
     channel_scales: dict = field(default_factory=dict)
+    excitation_v: float | None = None
 
     @property
     def n_segments(self) -> int:
@@ -182,6 +183,7 @@ def parse_rig(text: str, *, source: str = "<rig>") -> Rig:
     if kind not in READOUT_KINDS:
         raise RigError(f"{where}: kind {kind!r} is not known (known: {', '.join(READOUT_KINDS)})")
     r_ref = _num(readout, "r_ref_ohm", where, positive=True)
+    excitation_v = _num(readout, "excitation_v", where, positive=True) if "excitation_v" in readout else None
     channels = readout.get("channels")
     if channels is None:
         raise RigError(f"{where}: missing key channels")
@@ -254,4 +256,5 @@ def parse_rig(text: str, *, source: str = "<rig>") -> Rig:
         tip_length_m=tip,
         tip_mode=tip_mode,
         channel_scales={k: dict(v) for k, v in scales.items()},
+        excitation_v=excitation_v,
     )

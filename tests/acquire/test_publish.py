@@ -460,3 +460,40 @@ def test_cli_record_publishes(tmp_path):
                     proc.wait(10)
                 except subprocess.TimeoutExpired:
                     proc.kill()
+
+
+def test_calibration_loaded_mid_stream(ring, publisher_factory):
+    """Started raw, then given a calibration (as the live window's "Calibration..." does): shapes appear
+    from a block boundary on, and no message mixes the two."""
+    from acquire.calibration import Calibration
+
+    rig = load_rig(RIG)
+    n_seg = rig.n_segments
+    r = _divider_resistance(HEALTHY, r_ref_ohm=rig.r_ref_ohm, adc_bits=12)
+    cal = Calibration(
+        r0_ohm=r / 1.1, positive=[[200.0]] * n_seg, negative=[[200.0]] * n_seg,
+        x_min=np.full(n_seg, -0.5), x_max=np.full(n_seg, 0.5),
+        curvature_min_per_m=np.full(n_seg, -100.0), curvature_max_per_m=np.full(n_seg, 100.0),
+        readout_kind="divider", rig={},
+    )
+    pub = publisher_factory(rig=rig, adc_bits=12)
+    client = LineClient(pub.port)
+    assert pub.wait_for_clients(1, timeout_s=WAIT_S)
+
+    def push(start, n):
+        seq = np.arange(start, start + n, dtype=np.int64)
+        ring.push(FrameBlock(codes=np.tile(HEALTHY, (n, 1)), seq=seq, t_device_s=seq * 1e-3,
+                             t_host_s=np.zeros(n), status=np.zeros(n, dtype=np.uint8)))
+
+    push(0, 20)
+    assert client.wait_seq(19)
+    pub.set_calibration(cal)
+    push(20, 20)
+    assert client.wait_seq(39)
+    msgs = client.messages
+    assert [m["seq"] for m in msgs] == list(range(40))
+    assert "curvature" not in msgs[0]
+    assert "curvature" in msgs[-1] and np.allclose(msgs[-1]["curvature"], 20.0, rtol=1e-5)
+    first_shaped = next(i for i, m in enumerate(msgs) if "curvature" in m)
+    assert all("curvature" in m for m in msgs[first_shaped:])
+    client.close()
