@@ -37,12 +37,17 @@ def _append(ds: h5py.Dataset, values: np.ndarray) -> None:
 class Recorder:
     """Writes one recording from a :class:`FrameRing`.
 
+    Device time in the file counts from the file's first frame; label times
+    given to :meth:`begin_label`, :meth:`end_label` and :meth:`add_label` are
+    in the session's device time (the ring's ``t_device_s``) and are shifted
+    the same way.
+
     Parameters
     ----------
     path : path
         The file to create; an existing file is never overwritten.
     ring : FrameRing
-        The reader's ring; the recorder reads from its oldest frame on.
+        The reader's ring.
     rig_toml, device_hello : str
         Stored as root attributes.
     channel_names : sequence of str
@@ -59,6 +64,10 @@ class Recorder:
         At most this much data is lost if the process is killed.
     max_frames : int, optional
         Write at most this many frames; ``reached_max`` is set then.
+    from_oldest : bool
+        Start at the oldest frame the ring still holds (a recording started
+        with the session: nothing is missed) or, if False, at the newest (a
+        recording started later, from a button: it begins at the click).
 
     Attributes
     ----------
@@ -83,6 +92,7 @@ class Recorder:
         flush_interval_s: float = 0.25,
         n_segments: int | None = None,
         max_frames: int | None = None,
+        from_oldest: bool = True,
     ):
         self.path = Path(path)
         self.ring = ring
@@ -97,6 +107,7 @@ class Recorder:
         self.n_segments = n_segments
         self.label = label
         self.max_frames = max_frames
+        self.from_oldest = bool(from_oldest)
         self.reached_max = threading.Event()
         if label is not None:
             check_label_text(label)
@@ -116,6 +127,7 @@ class Recorder:
         self._finished = threading.Event()
         self._lock_fd: int | None = None
         self._reserve_bytes: int | None = None
+        self._t_dev0: float | None = None
         self._clock = ClockFit()
         self._clean_stop = False
         self._frame_bytes = 2 * ring.n_channels + 8 + 8 + 8 + 1
@@ -162,10 +174,10 @@ class Recorder:
             self.path.unlink(missing_ok=True)
             raise
         self._t0_host = time.monotonic()
-        self._cursor = self.ring.cursor(from_oldest=True)
+        self._cursor = self.ring.cursor(from_oldest=self.from_oldest)
         self._first_position = self._cursor.position
         if self.label is not None:
-            self.begin_label(self.label, t_start_s=0.0)
+            self.begin_label(self.label, t_start_s=self.FILE_START)
         self._thread = threading.Thread(target=self._run, name=f"recorder {self.path.name}", daemon=True)
         self._thread.start()
 
@@ -181,6 +193,9 @@ class Recorder:
 
     def wait_finished(self, timeout_s: float) -> bool:
         return self._finished.wait(timeout_s)
+
+    #: a label time meaning "the file's first frame"
+    FILE_START = object()
 
     def begin_label(self, text: str, *, t_start_s: float | None = None) -> int:
         """Open a labelled interval (device time; default: the newest frame). Returns its id."""
@@ -284,9 +299,13 @@ class Recorder:
         n = len(block)
         if n:
             t_host = block.t_host_s - self._t0_host
+            if self._t_dev0 is None:
+                # device time in the file counts from the file's first frame, whenever it was started
+                self._t_dev0 = float(block.t_device_s[0])
+            t_dev = block.t_device_s - self._t_dev0
             _append(raw["adc"], block.codes)
             _append(raw["seq"], block.seq)
-            _append(raw["t_device_s"], block.t_device_s)
+            _append(raw["t_device_s"], t_dev)
             _append(raw["t_host_s"], t_host)
             _append(raw["status"], block.status)
             if "derived" in f:
@@ -294,8 +313,8 @@ class Recorder:
                 _append(f["derived"]["curvature"], np.asarray(out.curvature_per_m, dtype=np.float32))
                 _append(f["derived"]["xy"], np.asarray(out.xy_m, dtype=np.float32))
             self.frames_written += n
-            self._last_t_device_s = float(block.t_device_s[-1])
-            point = self._clock.add_batch(block.t_device_s, t_host)
+            self._last_t_device_s = float(t_dev[-1])
+            point = self._clock.add_batch(t_dev, t_host)
             if point is not None:
                 drift_ppm, offset_s = self._clock.estimate()
                 g = f["clock"]
@@ -316,7 +335,7 @@ class Recorder:
                 break
             if op == "begin":
                 row = g["text"].shape[0]
-                t0 = self._last_t_device_s if t is None else t
+                t0 = self._file_time(t)
                 _append(g["text"], np.array([text.encode("utf-8")], dtype=g["text"].dtype))
                 _append(g["t_start_s"], np.array([0.0 if math.isnan(t0) else t0]))
                 _append(g["t_end_s"], np.array([math.nan]))
@@ -324,11 +343,19 @@ class Recorder:
             else:
                 row = self._open_labels.pop(label_id, None)
                 if row is not None:
-                    g["t_end_s"][row] = self._last_t_device_s if t is None else t
+                    g["t_end_s"][row] = self._file_time(t)
         # an open interval ends, for now, at the newest frame: a killed recorder leaves it that long
         for row in self._open_labels.values():
             if not math.isnan(self._last_t_device_s):
                 g["t_end_s"][row] = self._last_t_device_s
+
+    def _file_time(self, t_session_s) -> float:
+        """A label time given in the session's device time, in the file's (first frame = 0)."""
+        if t_session_s is None:
+            return self._last_t_device_s
+        if t_session_s is self.FILE_START:
+            return 0.0
+        return float(t_session_s) - (self._t_dev0 or 0.0)
 
     def _close_labels(self, f: h5py.File) -> None:
         self._write_labels(f)

@@ -443,26 +443,6 @@ class _DisplayChain:
         return tared
 
 
-class _RingFromNow:
-    """A ring as the recorder sees it, whose cursors start at the newest frame.
-
-    The recorder reads from the oldest frame the ring holds, which at the
-    start of a session is the session's first frame; a recording started later
-    from the window must begin at the moment of the click, not seconds before.
-    """
-
-    def __init__(self, ring: FrameRing):
-        self._ring = ring
-        self.n_channels = ring.n_channels
-        self.capacity = ring.capacity
-
-    def cursor(self, *, from_oldest: bool = False) -> RingCursor:
-        return self._ring.cursor(from_oldest=False)
-
-    def __getattr__(self, name):  # written, wait, latest, closed ...
-        return getattr(self._ring, name)
-
-
 # ----------------------------------------------------------------------------- live
 
 
@@ -704,10 +684,10 @@ class LiveSession:
                 from .pipeline import Pipeline
 
                 pipeline = Pipeline(rig=self.rig, calibration=cal, rate_hz=self.rate_hz, adc_bits=self.adc_bits)
-            ring = self.reader.ring if from_session_start else _RingFromNow(self.reader.ring)
             rec = Recorder(
                 path=Path(path),
-                ring=ring,
+                ring=self.reader.ring,
+                from_oldest=from_session_start,  # from a button: the recording begins at the click
                 rig_toml=self.rig.text,
                 device_hello=json.dumps(self.reader.hello),
                 channel_names=self.rig.channels,
