@@ -80,9 +80,13 @@ def test_hum_not_measured_below_nyquist():
 
 
 def test_excitation_voltage_from_rig_or_assumed(rig):
+    import re
+
+    bare = re.sub(r"(?m)^excitation_v\s*=.*\n", "", rig.text)
+    rig = parse_rig(bare, source="rig without excitation")
     v, assumed = excitation_voltage(rig)
     assert (v, assumed) == (3.3, True)
-    text = rig.text.replace("[readout]\n", "[readout]\nexcitation_v = 5.0\n", 1)
+    text = bare.replace("[readout]\n", "[readout]\nexcitation_v = 5.0\n", 1)
     rig5 = parse_rig(text, source="rig with excitation")
     assert excitation_voltage(rig5) == (5.0, False)
     codes = np.full((200, rig5.n_channels), 1000, dtype=np.uint16) + np.arange(rig5.n_channels)[None, ::-1] * 500
