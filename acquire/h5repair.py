@@ -67,23 +67,34 @@ def _superblock(fh) -> tuple[int, bytes, int]:
         fh.seek(offset)
         head = fh.read(12)
         if head[:8] == _SIGNATURE:
+            if len(head) < 12:
+                raise ValueError("file ends inside the superblock")
             version = head[8]
             if version not in (2, 3):
-                raise ValueError(f"superblock version {version} has no flags to clear")
+                raise _OldSuperblock(f"superblock version {version} has no flags to clear")
             size_offsets = head[9]
             body_len = 12 + 4 * size_offsets
             fh.seek(offset)
             body = fh.read(body_len + 4)
+            if len(body) < body_len + 4:
+                raise ValueError("file ends inside the superblock")
             (stored,) = struct.unpack_from("<I", body, body_len)
             return offset, body[:body_len], stored
         offset = 512 if offset == 0 else offset * 2
     raise ValueError("no HDF5 superblock found")
 
 
+class _OldSuperblock(ValueError):
+    """Superblock versions 0 and 1 (files made without SWMR features) keep no write flags."""
+
+
 def superblock_flags(path: str | os.PathLike) -> int:
-    """The file consistency flags byte (0 for a cleanly closed file)."""
+    """The file consistency flags byte (0 for a cleanly closed file or an old-format one)."""
     with open(path, "rb") as fh:
-        _, body, _ = _superblock(fh)
+        try:
+            _, body, _ = _superblock(fh)
+        except _OldSuperblock:
+            return 0
     return body[11]
 
 

@@ -395,8 +395,16 @@ class SerialReader:
                     self._event("reboot", f"device counters restarted at raw seq {int(raw_seq[0])}")
         self._resync_pending = False
 
+        # A gap of 32768 frames or more folds into the 16-bit seq; the device clock (32 bit)
+        # says how many frames the gap really spans, so add the whole wraps it hides.
+        rate = max(self.rate_hz, 1e-3)
+        expected = d_us * (rate * 1e-6)
+        long_gap = expected > 0x7000
+        if long_gap.any():
+            wraps = np.rint((expected[long_gap] - d_seq[long_gap]) / 65536.0).astype(np.int64)
+            d_seq[long_gap] += 65536 * np.maximum(wraps, 0)
         # a zero or backward step is not a wrap: keep the column increasing, count it
-        odd = (d_seq == 0) | (d_seq > 0x8000)
+        odd = (d_seq == 0) | ((d_seq > 0x8000) & ~long_gap)
         if odd.any():
             self.counters["seq_discontinuities"] += int(odd.sum())
             d_seq[odd] = 1

@@ -16,6 +16,7 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import os
+import struct
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -339,6 +340,19 @@ def _check_layout(f: h5py.File, path: Path) -> None:
             raise RecordingError(f"{path}: missing root attribute {key}")
 
 
+def _check_ours_before_repair(p: Path) -> None:
+    try:
+        with h5py.File(p, "r", libver="latest", swmr=True) as f:
+            layout = f.attrs.get("layout")
+    except OSError as exc:
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise RecordingError(f"{p}: left open for writing and cannot be read ({first})") from None
+    if layout is None or _as_text(layout) != LAYOUT:
+        raise RecordingError(
+            f"{p}: not a tapcurve recording, and marked open for writing by another program (left untouched)"
+        )
+
+
 def open_recording(path: str | os.PathLike, *, allow_live: bool = True) -> Recording:
     """Open a recording for reading, recovering one a killed recorder left.
 
@@ -362,14 +376,16 @@ def open_recording(path: str | os.PathLike, *, allow_live: bool = True) -> Recor
     live = False
     try:
         flags = superblock_flags(p)
-    except (ValueError, OSError):
-        flags = 0
+    except (ValueError, OSError, struct.error) as exc:
+        raise RecordingError(f"{p}: damaged or truncated HDF5 file ({exc})") from None
     if flags:
         if writer_alive(p):
             if not allow_live:
                 raise RecordingError(f"{p}: a recorder is still writing this file")
             live = True
         else:
+            # only ever repair our own recordings: look (read-only, SWMR) before touching anything
+            _check_ours_before_repair(p)
             try:
                 recovered = clear_write_flags(p)
             except (ValueError, OSError) as exc:

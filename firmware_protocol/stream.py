@@ -26,8 +26,10 @@ from .packets import (
 
 __all__ = ["SampleBlock", "StreamDecoder", "decode_stream", "MAX_FRAME_BYTES"]
 
-#: longest legal COBS frame: 255 codes of 2 bytes plus header and CRC, stuffed
-MAX_FRAME_BYTES = 1 + 8 + 2 * 255 + 2 + 4
+#: longest frame the decoder accepts: a samples packet of 255 channels is 525
+#: bytes stuffed; text packets (a hello with many extra keys) may be longer, up
+#: to this. Longer runs without 0x00 are noise and are dropped (as ``cobs``).
+MAX_FRAME_BYTES = 4096
 #: a frame length seen at least this often in one feed is decoded in bulk
 _BULK_MIN_ROWS = 4
 

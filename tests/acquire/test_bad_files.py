@@ -97,3 +97,29 @@ def test_rig_with_wrong_types(tmp_path, line, key):
     # the rig is read before any port is opened, so no device is needed to see the error
     res = tapcurve("record", "--port", "/dev/null-not-a-port", "--rig", str(rig), "--out", str(tmp_path / "x.h5"))
     one_line_exit_2(res, "typo.toml", key)
+
+
+@pytest.mark.parametrize("n_bytes", [9, 11, 30, 47, 200])
+def test_truncated_in_the_superblock(recording, tmp_path, n_bytes):
+    cut = tmp_path / "cut.h5"
+    cut.write_bytes(recording.read_bytes()[:n_bytes])
+    one_line_exit_2(tapcurve("inspect", str(cut)), str(cut))
+
+
+def test_foreign_file_left_open_is_not_touched(tmp_path):
+    """Another program's HDF5 file, killed while in SWMR write mode: tapcurve refuses it and changes nothing."""
+    from acquire.h5repair import superblock_flags
+
+    p = tmp_path / "other.h5"
+    code = (
+        "import h5py, os\n"
+        f"f = h5py.File({str(p)!r}, 'w', libver='latest')\n"
+        "f.create_dataset('x', shape=(0,), maxshape=(None,), dtype='f8', chunks=(16,))\n"
+        "f.swmr_mode = True\nf.flush()\nos._exit(0)\n"
+    )
+    subprocess.run([sys.executable, "-c", code], check=True, timeout=60)
+    flags = superblock_flags(p)
+    assert flags != 0
+    before = sha(p)
+    one_line_exit_2(tapcurve("inspect", str(p)), str(p), "not a tapcurve recording")
+    assert sha(p) == before and superblock_flags(p) == flags

@@ -119,3 +119,30 @@ def test_host_stamps_are_monotonic_clock(finger):
         reader.stop()
     assert before <= block.t_host_s.min() and block.t_host_s.max() <= after
     assert (np.diff(block.t_host_s) >= 0).all()
+
+
+def test_long_silent_gap_is_counted_not_folded():
+    """40 s without frames at 1 kHz: the 16-bit seq folds (40,001 mod 65,536 looks like a step back), but the
+    32-bit device clock tells the true gap; the frames are counted as lost, seq jumps by the true amount."""
+    from firmware_protocol import SampleBlock
+
+    reader = SerialReader(port="unused")
+    reader.hello = {"channels": 1, "rate_hz": 1000.0, "adc_bits": 12}
+    from acquire.frames import FrameRing
+
+    reader.ring = FrameRing(capacity_frames=1000, n_channels=1)
+    cur = reader.ring.cursor()
+
+    def block(seqs, t_us):
+        n = len(seqs)
+        return SampleBlock(np.array(seqs, np.uint16), np.array(t_us, np.uint32), np.zeros(n, np.uint8),
+                           np.zeros((n, 1), np.uint16))
+
+    reader._push_samples(block([7, 8, 9], [7000, 8000, 9000]), 1.0)
+    gap = 40_001  # frames 10 .. 40_009 never arrived
+    s = 9 + gap
+    reader._push_samples(block([s % 65536, (s + 1) % 65536], [s * 1000, (s + 1) * 1000]), 41.0)
+    seq = cur.read().seq
+    assert seq.tolist() == [7, 8, 9, s, s + 1]
+    assert reader.counters["frames_lost"] == gap - 1
+    assert reader.counters["seq_discontinuities"] == 0

@@ -119,8 +119,8 @@ def test_arbitrary_bytes_never_crash(junk, chunk):
 def test_overlong_frame_same_for_any_chunking():
     # a frame longer than any legal packet counts once as "cobs", whether it comes whole or in pieces
     wire, expect = _stream(m=5)
-    junk = b"\x05" * 2000 + b"\x00"
-    for chunk in (1, 13, 600, len(junk) + len(wire)):
+    junk = b"\x05" * 6000 + b"\x00"
+    for chunk in (7, 13, 600, 4500, len(junk) + len(wire)):
         dec = StreamDecoder()
         data = junk + wire
         got = []
@@ -128,6 +128,17 @@ def test_overlong_frame_same_for_any_chunking():
             got += dec.feed(data[i : i + chunk])
         assert _samples(got) == expect, chunk
         assert dec.drops["cobs"] == 1, (chunk, dec.drops)
+
+
+def test_long_hello_is_kept():
+    # a hello may carry many extra keys (CONTRACTS.md section 1): 2 kB of JSON decodes whole
+    info = {"protocol": 1, "channels": 6, "rate_hz": 1000, "adc_bits": 12, "notes": "x" * 2000}
+    dec = StreamDecoder()
+    items = []
+    wire = encode_packet(Hello(info))
+    for i in range(0, len(wire), 100):
+        items += dec.feed(wire[i : i + 100])
+    assert items == [Hello(info)] and dec.dropped == 0
 
 
 def test_noise_is_fast_enough_and_invents_nothing():
