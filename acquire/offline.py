@@ -930,7 +930,8 @@ def process_recording(
         notes.extend(rate_notes + bit_notes)
         if rec.has_derived:
             notes.append(f"{rec.path}: has /derived already; the copy gets a new one")
-        s_m = Reconstructor.from_rig(rig, spacing_m=SPACING_M).s_m
+        recon = Reconstructor.from_rig(rig, spacing_m=SPACING_M)
+        s_m = recon.s_m
         src_sha = file_sha256(src_path)
         tmp = out.with_name(f".{out.name}.{os.getpid()}.partial")
         try:
@@ -952,7 +953,7 @@ def process_recording(
                 for name, ds in fo["raw"].items():
                     if isinstance(ds, h5py.Dataset) and ds.shape and ds.shape[0] > n and ds.maxshape[0] is None:
                         ds.resize(n, axis=0)
-                create_derived(fo, n_segments=rig.n_segments, s_m=s_m)
+                n_points = create_derived(fo, n_segments=rig.n_segments, s_m=s_m, tap_index=recon.tap_index)
                 g = fo["derived"]
                 curv, xy = g["curvature"], g["xy"]
                 curv.resize(n, axis=0)
@@ -963,7 +964,7 @@ def process_recording(
                 ):
                     stop = start + len(p)
                     curv[start:stop] = p.curvature_per_m
-                    xy[start:stop] = p.xy_m
+                    xy[start:stop] = p.xy_m[:, :n_points]
                     outside += p.outside_calibration.sum(axis=0)
                     nan_frames += int(np.count_nonzero(~np.isfinite(p.curvature_per_m).all(axis=1)))
                     bar.update(stop)
@@ -982,7 +983,7 @@ def process_recording(
                 a["calibration_sha256"] = cal_sha
                 a["frames_without_shape"] = nan_frames
                 a["frames_outside_calibration"] = outside
-                a["tap_index"] = Reconstructor.from_rig(rig, spacing_m=SPACING_M).tap_index
+                a["tap_index"] = recon.tap_index
             bar.close()
             try:
                 _publish(tmp, out, replace=False)  # never replaces a file that appeared meanwhile

@@ -20,6 +20,7 @@ increasing and every row keeps one meaning.
 from __future__ import annotations
 
 import errno
+import json
 import queue
 import threading
 import time
@@ -73,6 +74,24 @@ def open_port(port: str, *, timeout_s: float = READ_WINDOW_S) -> serial.Serial:
         raise PortError(f"port {port}: cannot open ({text})") from None
     except (OSError, ValueError) as exc:
         raise PortError(f"port {port}: cannot open ({exc})") from None
+
+
+def _is_int(value) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
+def _hello_problem(info: dict) -> str | None:
+    """What makes a hello unusable for this host (protocol version 1), or None."""
+    if info.get("protocol") != 1:
+        return f"speaks protocol {info.get('protocol')!r}; this tapcurve speaks protocol 1"
+    if not _is_int(info.get("channels")) or not 1 <= info["channels"] <= 255:
+        return f"has channels {info.get('channels')!r}; expected a whole number 1..255"
+    rate = info.get("rate_hz")
+    if isinstance(rate, bool) or not isinstance(rate, (int, float)) or not rate > 0:
+        return f"has rate_hz {rate!r}; expected a positive number"
+    if not _is_int(info.get("adc_bits")) or not 1 <= info["adc_bits"] <= 16:
+        return f"has adc_bits {info.get('adc_bits')!r}; expected a whole number 1..16"
+    return None
 
 
 class SerialReader:
@@ -191,14 +210,15 @@ class SerialReader:
             self._ser.close()
             raise
         self.hello = info
-        channels = info.get("channels")
-        rate = info.get("rate_hz")
-        if not isinstance(channels, int) or channels < 1 or not isinstance(rate, (int, float)) or rate <= 0:
+        problem = _hello_problem(info)
+        if problem is not None:
             self._ser.close()
-            raise PortError(f"port {self.port}: hello lacks valid channels/rate_hz: {info}")
+            raise PortError(f"port {self.port}: device hello {problem}")
+        channels = info["channels"]
+        rate = info["rate_hz"]
         capacity = int(max(4096, rate * self.ring_seconds))
         self.ring = FrameRing(capacity_frames=capacity, n_channels=channels)
-        self._event("hello", f"{info}")
+        self._event("hello", json.dumps(info))
         if self.rate_hz_request is not None:
             self._write(cmd_rate(self.rate_hz_request))
             self.hello = dict(self.hello, rate_hz=self.rate_hz_request)
@@ -336,7 +356,7 @@ class SerialReader:
                 self._push_samples(item, now)
             elif isinstance(item, Hello):
                 info = dict(item.info)
-                self._event("hello", f"{info}")
+                self._event("hello", json.dumps(info))
                 if info.get("channels") != self.n_channels:
                     self.error = (
                         f"port {self.port}: device now sends {info.get('channels')} channels, "

@@ -23,7 +23,7 @@ import numpy as np
 from .clock import ClockFit
 from .errors import UserError
 from .frames import EventLog, FrameBlock, FrameRing
-from .recording import COUNTER_NAMES, LIBVER, check_label_text, create_derived, create_layout
+from .recording import COUNTER_NAMES, EVENT_TEXT_BYTES, LIBVER, check_label_text, create_derived, create_layout
 
 __all__ = ["Recorder"]
 
@@ -128,6 +128,7 @@ class Recorder:
         self._lock_fd: int | None = None
         self._reserve_bytes: int | None = None
         self._t_dev0: float | None = None
+        self._derived_points = 0
         self._clock = ClockFit()
         self._clean_stop = False
         self._frame_bytes = 2 * ring.n_channels + 8 + 8 + 8 + 1
@@ -162,7 +163,12 @@ class Recorder:
                 calibration_json=self.calibration_json,
             )
             if self.pipeline is not None and getattr(self.pipeline, "s_m", None) is not None:
-                create_derived(f, n_segments=int(self.n_segments or self.pipeline.n_segments), s_m=self.pipeline.s_m)
+                self._derived_points = create_derived(
+                    f,
+                    n_segments=int(self.n_segments or self.pipeline.n_segments),
+                    s_m=self.pipeline.s_m,
+                    tap_index=self.pipeline.reconstructor.tap_index,
+                )
             f.swmr_mode = True
             # HDF5 drops its own file lock once SWMR writing starts; ours tells
             # readers (open_recording) that a writer is alive, so they never
@@ -311,7 +317,7 @@ class Recorder:
             if "derived" in f:
                 out = self.pipeline.process(block)
                 _append(f["derived"]["curvature"], np.asarray(out.curvature_per_m, dtype=np.float32))
-                _append(f["derived"]["xy"], np.asarray(out.xy_m, dtype=np.float32))
+                _append(f["derived"]["xy"], np.asarray(out.xy_m[:, : self._derived_points], dtype=np.float32))
             self.frames_written += n
             self._last_t_device_s = float(t_dev[-1])
             point = self._clock.add_batch(t_dev, t_host)
@@ -372,7 +378,7 @@ class Recorder:
         _append(g["t_host_s"], np.array([e.t_host_s - self._t0_host for e in new]))
         _append(g["frame"], np.array([e.frame_index - self._first_position for e in new], dtype=np.int64))
         _append(g["kind"], np.array([e.kind.encode()[:16] for e in new], dtype=g["kind"].dtype))
-        _append(g["text"], np.array([_clip_utf8(e.text, 256) for e in new], dtype=tb))
+        _append(g["text"], np.array([_clip_utf8(e.text, EVENT_TEXT_BYTES) for e in new], dtype=tb))
 
     def _write_counters(self, f: h5py.File) -> None:
         values = dict(self.counters()) if self.counters is not None else {}

@@ -46,7 +46,7 @@ __all__ = [
 LAYOUT = "tapcurve-recording"
 LAYOUT_VERSION = 1
 LABEL_BYTES = 128
-EVENT_TEXT_BYTES = 256
+EVENT_TEXT_BYTES = 1024
 LIBVER = ("v110", "v110")
 #: columns of /counters/values, one row per flush
 COUNTER_NAMES = (
@@ -167,13 +167,23 @@ def create_layout(
     counters.attrs["about"] = "cumulative counters, one row per flush; the last row is the final count"
 
 
-def create_derived(f: h5py.File, *, n_segments: int, s_m: np.ndarray) -> None:
-    """Create /derived for a calibration: curvature (N,S), s_m (P,), xy (N,P,2)."""
+def create_derived(f: h5py.File, *, n_segments: int, s_m: np.ndarray, tap_index: np.ndarray) -> int:
+    """Create /derived for a calibration: curvature (N,S), s_m (P,), xy (N,P,2).
+
+    ``s_m`` and ``tap_index`` are the reconstructor's (its points may run on
+    past the sensor into a fingertip); the file keeps the points along the
+    sensor only, so ``s_m`` ends at the sensor length as the layout says.
+    Returns P, the number of points per frame to write.
+    """
+    tap_index = np.asarray(tap_index, dtype=np.int64)
+    n_points = int(tap_index[-1]) + 1
     g = f.create_group("derived")
     _growing(g, "curvature", dtype=np.float32, row_shape=(n_segments,), units="1/m")
-    s = g.create_dataset("s_m", data=np.asarray(s_m, dtype=np.float64))
+    s = g.create_dataset("s_m", data=np.asarray(s_m, dtype=np.float64)[:n_points])
     s.attrs["units"] = "m"
-    _growing(g, "xy", dtype=np.float32, row_shape=(len(s_m), 2), units="m")
+    s.attrs["tap_index"] = tap_index  # s_m[tap_index[k]] is tap k; the last is the sensor's end
+    _growing(g, "xy", dtype=np.float32, row_shape=(n_points, 2), units="m")
+    return n_points
 
 
 @dataclass(frozen=True)

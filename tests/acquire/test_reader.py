@@ -146,3 +146,14 @@ def test_long_silent_gap_is_counted_not_folded():
     assert seq.tolist() == [7, 8, 9, s, s + 1]
     assert reader.counters["frames_lost"] == gap - 1
     assert reader.counters["seq_discontinuities"] == 0
+
+
+def test_hello_checks():
+    from acquire.reader import _hello_problem
+
+    good = {"protocol": 1, "channels": 6, "rate_hz": 1000, "adc_bits": 12, "firmware": "x"}
+    assert _hello_problem(good) is None
+    for key, bad, words in [("protocol", 2, "protocol 2"), ("adc_bits", "twelve", "adc_bits"),
+                            ("adc_bits", 40, "adc_bits 40"), ("channels", 0, "channels 0"),
+                            ("rate_hz", -5, "rate_hz -5")]:
+        assert words in _hello_problem(dict(good, **{key: bad}))
