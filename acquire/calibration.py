@@ -96,6 +96,7 @@ __all__ = [
     "FitReport",
     "Calibration",
     "fit_calibration",
+    "load_for_rig",
     "software_version",
     "file_sha256",
     "MODEL_NAME",
@@ -616,7 +617,17 @@ class Calibration:
                 f"{self.source}: calibration was made with readout kind {self.readout_kind!r}, "
                 f"rig {rig.source} has {rig.readout_kind!r}"
             )
+        r_ref = self.rig.get("r_ref_ohm")
+        if r_ref is not None and not math.isclose(float(r_ref), rig.r_ref_ohm, rel_tol=1e-6):
+            # resistances scale with r_ref: flat resistances and fits would be wrong
+            raise CalibrationError(
+                f"{self.source}: calibration was made with r_ref_ohm = {float(r_ref):g}, "
+                f"rig {rig.source} has {rig.r_ref_ohm:g}"
+            )
         notes = []
+        lengths = self.rig.get("segment_lengths_mm")
+        if lengths is not None and not np.allclose(np.asarray(lengths) * 1e-3, rig.segment_lengths_m, atol=1e-7):
+            notes.append(f"{self.source}: made for segment lengths {lengths} mm, rig {rig.source} differs")
         if self.rig.get("sha256") and self.rig["sha256"] != rig.sha256:
             notes.append(f"{self.source}: made with a different rig file ({self.rig.get('source', '?')}) than {rig.source}")
         return notes
@@ -947,7 +958,10 @@ def fit_calibration(
         curvature_min_per_m=k_lo,
         curvature_max_per_m=k_hi,
         readout_kind=rig.readout_kind,
-        rig={"name": rig.name, "source": rig.source, "sha256": rig.sha256, "n_segments": n_seg},
+        rig={
+            "name": rig.name, "source": rig.source, "sha256": rig.sha256, "n_segments": n_seg,
+            "r_ref_ohm": rig.r_ref_ohm, "segment_lengths_mm": [round(float(v) * 1e3, 6) for v in rig.segment_lengths_m],
+        },
         recordings=[dict(r) for r in recordings],
         created_utc=_utc_now(),
         software_version=software_version(),
@@ -955,3 +969,24 @@ def fit_calibration(
         source="fitted calibration",
     )
     return cal, report
+
+
+def load_for_rig(path, rig: Rig, *, warn=None):
+    """Load a calibration file and check it against ``rig``; None for None.
+
+    Notes that do not stop use (a different rig file text, other segment
+    lengths) go to ``warn`` (default: stderr), one line each.
+
+    Raises
+    ------
+    UserError
+        Missing or unreadable file, or it does not fit the rig.
+    """
+    if path is None:
+        return None
+    import sys
+
+    cal = Calibration.load(path)
+    for note in cal.check_rig(rig):
+        print(f"tapcurve: warning: {note}", file=warn or sys.stderr)
+    return cal

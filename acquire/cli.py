@@ -186,13 +186,9 @@ class _StopFlag:
 
 
 def _load_calibration(path: str | None, rig):
-    if path is None:
-        return None
-    from .calibration import Calibration
+    from .calibration import load_for_rig
 
-    cal = Calibration.load(path)
-    cal.check_rig(rig)
-    return cal
+    return load_for_rig(path, rig)
 
 
 def _make_pipeline(rig, calibration, reader):

@@ -60,20 +60,10 @@ __all__ = [
 
 
 def load_calibration_for(path, rig: Rig):
-    """Load a calibration file and check it against ``rig``; None for None.
+    """Load a calibration file and check it against ``rig`` (see :func:`acquire.calibration.load_for_rig`)."""
+    from .calibration import load_for_rig
 
-    Raises
-    ------
-    UserError
-        Missing or unreadable file, or it does not fit the rig.
-    """
-    if path is None:
-        return None
-    from .calibration import Calibration
-
-    cal = Calibration.load(path)
-    cal.check_rig(rig)
-    return cal
+    return load_for_rig(path, rig)
 
 
 def _fmin_reduce(x: np.ndarray) -> np.ndarray:

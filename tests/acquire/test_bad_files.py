@@ -123,3 +123,15 @@ def test_foreign_file_left_open_is_not_touched(tmp_path):
     before = sha(p)
     one_line_exit_2(tapcurve("inspect", str(p)), str(p), "not a tapcurve recording")
     assert sha(p) == before and superblock_flags(p) == flags
+
+
+def test_calibration_for_another_rig(tmp_path):
+    """The demo calibration (made with r_ref 10 kOhm) on a rig with another reference resistor: refused."""
+    rig_text = (REPO / "acquire" / "rigs" / "demo_finger.toml").read_text().replace("r_ref_ohm = 10000.0", "r_ref_ohm = 4700.0")
+    rig = tmp_path / "other.toml"
+    rig.write_text(rig_text)
+    cal = REPO / "recordings" / "demo_calibration.json"
+    res = tapcurve("record", "--port", "/dev/null-not-a-port", "--rig", str(rig), "--out", str(tmp_path / "x.h5"),
+                   "--calibration", str(cal))
+    one_line_exit_2(res, "r_ref_ohm", "4700")
+    assert not (tmp_path / "x.h5").exists()
