@@ -26,7 +26,9 @@ SAFETY_NOTE = (
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # one line, exit 2, as for every user error
-        raise UserError(f"{self.prog}: {message}")
+        # "tapcurve record: ..." is printed as "tapcurve: record: ..."
+        where = self.prog.removeprefix("tapcurve").strip()
+        raise UserError(f"{where}: {message}" if where else message)
 
 
 def _positive_float(name: str):
@@ -84,7 +86,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rig", required=True, help="rig file (TOML)")
     p.add_argument("--out", required=True, help="recording to create (never overwritten)")
     p.add_argument("--label", help="mark the whole recording as one labelled interval")
-    p.add_argument("--duration", type=_positive_float("--duration"), help="seconds of device time to record")
+    p.add_argument("--duration", type=_positive_float("--duration"), help="record S x the device's rate frames (S seconds of device time when no frame is lost)")
     p.add_argument("--calibration", help="calibration JSON: /derived is written as frames arrive")
     p.add_argument("--quiet", action="store_true", help="no status line")
     _add_publish(p)
@@ -156,8 +158,7 @@ def main(argv: list[str] | None = None) -> int:
             print(f"tapcurve {software_version()}")
             return 0
         if args.command is None:
-            parser.print_help()
-            return 2
+            raise UserError("no command given (try: tapcurve --help)")
         handler = _HANDLERS[args.command]
         return int(handler(args) or 0)
     except UserError as exc:
@@ -231,6 +232,10 @@ def _cmd_record(args) -> int:
     if not out.parent.is_dir():
         raise UserError(f"{out}: folder {out.parent} does not exist")
     calibration = _load_calibration(args.calibration, rig)
+    if args.label is not None:
+        from .recording import check_label_text
+
+        check_label_text(args.label)  # before anything opens
     if args.publish:
         from .publish import check_address
 

@@ -179,6 +179,13 @@ class FrameRing:
             status=self._status[idx].copy(),
         )
 
+    def t_host_at(self, position: int) -> float | None:
+        """Host time of the frame at ``position`` if the ring still holds it, else None."""
+        with self._cond:
+            if not max(0, self._written - self.capacity) <= position < self._written:
+                return None
+            return float(self._t_host[position % self.capacity])
+
     def latest(self, n_frames: int) -> FrameBlock:
         """Copy of the newest ``n_frames`` frames (fewer if the ring holds fewer)."""
         with self._cond:

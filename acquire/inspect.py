@@ -31,7 +31,10 @@ def inspect_summary(path) -> dict:
         if cal is not None:
             try:
                 doc = json.loads(cal)
-                cal_info = {k: doc.get(k) for k in ("model", "created_utc", "rig_sha256") if k in doc}
+                model = doc.get("model")
+                name = model.get("name", "?") if isinstance(model, dict) else model
+                cal_info = {"model": name, "created_utc": doc.get("created_utc"),
+                            "rig_sha256": (doc.get("rig") or {}).get("sha256") if isinstance(doc.get("rig"), dict) else None}
             except json.JSONDecodeError:
                 cal_info = {"error": "calibration_json is not JSON"}
         return {

@@ -179,9 +179,11 @@ class Recorder:
             f.close()
             self.path.unlink(missing_ok=True)
             raise
-        self._t0_host = time.monotonic()
         self._cursor = self.ring.cursor(from_oldest=self.from_oldest)
         self._first_position = self._cursor.position
+        # host time counts from the file's creation, or from its first frame if that came earlier
+        first = self.ring.t_host_at(self._first_position)
+        self._t0_host = time.monotonic() if first is None else min(time.monotonic(), first)
         if self.label is not None:
             self.begin_label(self.label, t_start_s=self.FILE_START)
         self._thread = threading.Thread(target=self._run, name=f"recorder {self.path.name}", daemon=True)

@@ -86,6 +86,9 @@ def check_label_text(text: str) -> bytes:
     data = text.encode("utf-8")
     if not text.strip():
         raise UserError("label is empty")
+    from .calibration import parse_label
+
+    parse_label(text)  # a label that looks like a reference (radius=, curvature=) must be readable now
     if len(data) > LABEL_BYTES:
         raise UserError(f"label {text[:30]!r}... is {len(data)} bytes of UTF-8; labels hold at most {LABEL_BYTES}")
     return data

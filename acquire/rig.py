@@ -8,6 +8,7 @@ from __future__ import annotations
 import hashlib
 import math
 import re
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -64,6 +65,7 @@ class Rig:
     tip_mode: str
     channel_scales: dict = field(default_factory=dict)
     excitation_v: float | None = None
+    warnings: tuple[str, ...] = ()
 
     @property
     def n_segments(self) -> int:
@@ -95,8 +97,11 @@ def default_rig_text() -> str:
     return (Path(__file__).resolve().parent / "rigs" / "demo_finger.toml").read_text(encoding="utf-8")
 
 
-def load_rig(path: str | Path | None) -> Rig:
+def load_rig(path: str | Path | None, *, warn=None) -> Rig:
     """Load a rig file; ``None`` gives the built-in demo rig.
+
+    Keys and tables tapcurve does not read (misspelt ones, most likely) are
+    reported on ``warn`` (default: stderr), one line each, and ignored.
 
     Raises
     ------
@@ -112,7 +117,10 @@ def load_rig(path: str | Path | None) -> Rig:
         raise RigError(f"{p}: rig file not found") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise RigError(f"{p}: cannot read rig file ({exc})") from None
-    return parse_rig(text, source=str(p))
+    rig = parse_rig(text, source=str(p))
+    for line in rig.warnings:
+        print(f"tapcurve: warning: {line}", file=warn or sys.stderr)
+    return rig
 
 
 def _num(table: dict, key: str, where: str, *, default=None, positive=False, nonneg=False) -> float:
@@ -198,6 +206,8 @@ def parse_rig(text: str, *, source: str = "<rig>") -> Rig:
         if not m:
             continue
         k = int(m.group(1))
+        if tap_channels[k] >= 0 if k < n_seg else False:
+            raise RigError(f"{where}: channels names tap {k} twice ({channels[tap_channels[k]]!r} and {label!r})")
         if k >= n_seg:
             raise RigError(
                 f"{where}: channel {label!r} names tap {k}, but [sensor] has {n_seg} segments "
@@ -238,7 +248,23 @@ def parse_rig(text: str, *, source: str = "<rig>") -> Rig:
     if tip_mode not in ("rigid", "continue"):
         raise RigError(f"{where}: tip_mode must be \"rigid\" or \"continue\", got {tip_mode!r}")
 
+    warnings = []
+    known = {
+        "sensor": {"segment_lengths_mm", "name", "segment_ohm_range"},
+        "readout": {"kind", "r_ref_ohm", "channels", "scales", "excitation_v"},
+        "filters": {"spike_window", "lowpass_hz", "lowpass_order"},
+        "body": {"thickness_above_mm", "thickness_below_mm", "tip_length_mm", "tip_mode"},
+    }
+    for table, value in doc.items():
+        if table not in known:
+            warnings.append(f"{source}: table [{table}] is not one tapcurve reads (misspelt?)")
+            continue
+        for key in value:
+            if key not in known[table]:
+                warnings.append(f"{source}: [{table}] {key} is not a key tapcurve reads (misspelt?); ignored")
+
     return Rig(
+        warnings=tuple(warnings),
         source=source,
         text=text,
         name=name,

@@ -135,3 +135,11 @@ def test_calibration_for_another_rig(tmp_path):
                    "--calibration", str(cal))
     one_line_exit_2(res, "r_ref_ohm", "4700")
     assert not (tmp_path / "x.h5").exists()
+
+
+@pytest.mark.parametrize("label", ["radius=abc", "radius=0mm", "curvature=forty/m"])
+def test_unreadable_reference_label_refused_when_recording(tmp_path, label):
+    # refused at once, not later by `calibrate`; a free label ("grasp") stays allowed
+    res = tapcurve("record", "--port", "/dev/null-not-a-port", "--rig", str(REPO / "acquire" / "rigs" / "demo_finger.toml"),
+                   "--out", str(tmp_path / "x.h5"), "--label", label)
+    one_line_exit_2(res, label)

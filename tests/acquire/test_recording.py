@@ -210,3 +210,17 @@ def test_foreign_and_newer(tmp_path):
         f.attrs["layout_version"] = 2
     with pytest.raises(RecordingError, match="newer"):
         open_recording(q)
+
+
+def test_host_time_never_negative(tmp_path):
+    # frames that were in the ring before the file was made: host time counts from the earliest of them
+    ring = FrameRing(capacity_frames=1000, n_channels=6)
+    block = _block(0, 50, 6)
+    block.t_host_s[:] = time.monotonic() - 0.5  # arrived half a second before the recording starts
+    ring.push(block)
+    rec = _recorder(tmp_path / "r.h5", ring)
+    rec.start()
+    rec.stop()
+    with h5py.File(tmp_path / "r.h5", "r") as f:
+        t = f["raw/t_host_s"][:]
+    assert t.shape == (50,) and t.min() == 0.0

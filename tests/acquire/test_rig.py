@@ -76,3 +76,19 @@ def test_device_channel_check():
     rig.check_device(channels=6)
     with pytest.raises(RigError, match="lists 6 channels but the device sends 8"):
         rig.check_device(channels=8)
+
+
+def test_tap_named_twice():
+    with pytest.raises(RigError, match="tap 1 twice"):
+        parse_rig(CONTRACT_EXAMPLE.replace('"tap2"', '"tap01"'), source="r.toml")
+
+
+def test_unknown_keys_warned(tmp_path, capsys):
+    p = tmp_path / "typo.toml"
+    p.write_text(CONTRACT_EXAMPLE.replace("r_ref_ohm = 10000.0", "r_ref_ohm = 10000.0\nr_ref_ohms = 4700.0")
+                 + "\n[filter]\nlowpass_hz = 10\n")
+    rig = load_rig(p)
+    err = capsys.readouterr().err
+    assert "[filter]" in err and "r_ref_ohms" in err
+    assert len(rig.warnings) == 2
+    assert rig.r_ref_ohm == 10000.0
