@@ -111,7 +111,10 @@ def format_summary(s: dict) -> str:
         if len(events) > 20:
             lines.append(f"    ... {len(events) - 20} more")
     clock = s.get("clock")
-    if clock and clock["points"] >= 2 and clock["drift_ppm"] == clock["drift_ppm"]:
+    if clock and clock["span_s"] < 60.0:
+        # over seconds, link latency jitter (ms) dwarfs any clock drift (us)
+        lines.append(f"  clock       recording too short for a drift estimate ({clock['span_s']:.0f} s; needs a minute)")
+    elif clock and clock["points"] >= 2 and clock["drift_ppm"] == clock["drift_ppm"]:
         lines.append(
             f"  clock       host - device drift {clock['drift_ppm']:+.1f} ppm, offset {clock['offset_s'] * 1e3:.2f} ms "
             f"(fit over {clock['span_s']:.0f} s of device time, {clock['points']} points)"
