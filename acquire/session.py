@@ -1281,64 +1281,11 @@ class ReplaySource:
 # ----------------------------------------------------------------------------- command line
 
 
-_FAULT_OPTION_NAMES = {
-    "open_tap": "--open-tap",
-    "short_taps": "--short-taps",
-    "noisy_channel": "--noisy-channel",
-    "stuck_channel": "--stuck-channel",
-    "corrupt_rate": "--corrupt-rate",
-    "drop_rate": "--drop-rate",
-}
-
-
-def _tap_pair(text: str) -> tuple[int, int]:
-    import argparse
-
-    parts = str(text).split(",")
-    try:
-        a, b = (int(p) for p in parts)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be two taps A,B, got {text!r}") from None
-    return a, b
-
-
-def _fraction(text: str) -> float:
-    import argparse
-
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
-    if not 0.0 <= v < 1.0:
-        raise argparse.ArgumentTypeError(f"must be a fraction 0 <= p < 1, got {text!r}")
-    return v
-
-
-def _rate(text: str) -> float:
-    import argparse
-
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
-    if not (0.1 <= v <= 50000.0):
-        raise argparse.ArgumentTypeError(f"must be 0.1 .. 50000 Hz, got {text!r}")
-    return v
-
-
 def add_virtual_source_arguments(parser) -> None:
     """Options of the built-in virtual finger for commands whose source defaults to it (main thread)."""
-    g = parser.add_argument_group("built-in virtual finger (used without --port; simulated, for demos and tests)")
-    g.add_argument("--rate-hz", type=_rate, default=1000.0, metavar="HZ", help="sample rate (default 1000)")
-    g.add_argument("--seed", type=int, default=0, metavar="N", help="seed of the simulated sensor and its noise")
-    g.add_argument("--hold", metavar="LABEL", help="hold the finger on a jig: flat, radius=25mm, curvature=40/m")
-    g.add_argument("--scenario", default="grasp", metavar="NAME", help="time course: grasp or sweep")
-    g.add_argument("--open-tap", type=int, metavar="K", help="simulate a broken wire from tap K to its input")
-    g.add_argument("--short-taps", type=_tap_pair, metavar="A,B", help="simulate taps A and B shorted together")
-    g.add_argument("--noisy-channel", type=int, metavar="K", help="simulate a very noisy channel K")
-    g.add_argument("--stuck-channel", type=int, metavar="K", help="simulate channel K stuck at one code")
-    g.add_argument("--drop-rate", type=_fraction, default=0.0, metavar="P", help="fraction of packets lost")
-    g.add_argument("--corrupt-rate", type=_fraction, default=0.0, metavar="P", help="fraction of packets corrupted")
+    from .virtual.cli import add_finger_arguments
+
+    add_finger_arguments(parser, title="built-in virtual finger (used without --port; simulated, for demos and tests)")
 
 
 def virtual_options_from_args(args, rig: Rig) -> VirtualOptions:
@@ -1347,26 +1294,9 @@ def virtual_options_from_args(args, rig: Rig) -> VirtualOptions:
     Raises
     ------
     UserError
-        A fault that does not fit the rig, or an unknown hold label or scenario (message names the option).
+        A bad value, a fault that does not fit the rig, or an unknown hold label or scenario (the message
+        names the option).
     """
-    from .virtual import Faults
-    from .virtual.model import SCENARIOS, parse_hold_label
+    from .virtual.cli import finger_settings_from_args
 
-    if args.scenario not in SCENARIOS:
-        raise UserError(f"--scenario {args.scenario!r}: not known (known: {', '.join(SCENARIOS)})")
-    if args.hold is not None:
-        try:
-            parse_hold_label(args.hold)
-        except UserError as exc:
-            raise UserError(f"--hold: {exc}") from None
-    faults = Faults(
-        open_tap=args.open_tap,
-        short_taps=args.short_taps,
-        noisy_channel=args.noisy_channel,
-        stuck_channel=args.stuck_channel,
-        drop_rate=args.drop_rate,
-        corrupt_rate=args.corrupt_rate,
-    )
-    faults.check(rig, names=_FAULT_OPTION_NAMES)
-    return VirtualOptions(rate_hz=args.rate_hz, seed=args.seed, hold=args.hold, scenario=args.scenario,
-                          faults=faults)
+    return VirtualOptions(**finger_settings_from_args(args, rig))

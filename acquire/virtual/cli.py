@@ -15,7 +15,7 @@ from ..errors import UserError
 from ..rig import load_rig
 from .model import SCENARIOS, Faults, parse_hold_label
 
-__all__ = ["add_virtual_device_arguments", "run_virtual_device"]
+__all__ = ["add_virtual_device_arguments", "run_virtual_device", "add_finger_arguments", "finger_settings_from_args"]
 
 _FAULT_OPTIONS = {
     "open_tap": "--open-tap",
@@ -29,27 +29,56 @@ _FAULT_OPTIONS = {
 }
 
 
+def add_finger_arguments(parser, *, title: str) -> None:
+    """Options that shape the simulated finger, shared by every command that can run it (main thread).
+
+    Values are kept as text and checked by :func:`finger_settings_from_args`,
+    so a bad one gives one line naming its option.
+    """
+    g = parser.add_argument_group(title)
+    g.add_argument("--rate-hz", metavar="HZ", default="1000", help="sample rate at boot (default 1000)")
+    g.add_argument("--seed", metavar="N", default="0", help="seed of the sensor's spread, the grasp cycles and the noise")
+    g.add_argument("--scenario", metavar="NAME", default="grasp", help=f"time course: {', '.join(SCENARIOS)} (default grasp)")
+    g.add_argument("--hold", metavar="LABEL", help="press the finger onto a jig: flat, radius=25mm, curvature=40/m")
+    g.add_argument("--open-tap", metavar="K", help="simulated fault: wire from tap K to its ADC input broken")
+    g.add_argument("--short-taps", metavar="A,B", help="simulated fault: taps A and B shorted together")
+    g.add_argument("--noisy-channel", metavar="K", help="simulated fault: channel K very noisy")
+    g.add_argument("--stuck-channel", metavar="K", help="simulated fault: channel K stuck at one code")
+    g.add_argument("--corrupt-rate", metavar="P", default="0", help="fraction of packets corrupted on the wire")
+    g.add_argument("--drop-rate", metavar="P", default="0", help="fraction of packets never sent")
+
+
+def finger_settings_from_args(args, rig) -> dict:
+    """Checked ``rate_hz``, ``seed``, ``hold``, ``scenario`` and ``faults`` from :func:`add_finger_arguments`.
+
+    Raises UserError naming the option at fault (a fault that does not fit the rig included).
+    """
+    rate = _number(args.rate_hz, "--rate-hz", low=0.1, high=50000.0)
+    seed = _number(args.seed, "--seed", kind=int, low=0)
+    if args.scenario not in SCENARIOS:
+        raise UserError(f"--scenario {args.scenario!r}: not known (known: {', '.join(SCENARIOS)})")
+    if args.hold is not None:
+        try:
+            parse_hold_label(args.hold)
+        except UserError as exc:
+            raise UserError(f"--hold: {exc}") from None
+    faults = _faults_from(args)
+    faults.check(rig, names=_FAULT_OPTIONS)
+    return {"rate_hz": rate, "seed": seed, "hold": args.hold, "scenario": args.scenario, "faults": faults}
+
+
 def add_virtual_device_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the virtual device's options to ``parser`` (main thread, at start-up)."""
     a = parser.add_argument
     a("--rig", metavar="PATH", help="rig file (default: the built-in demo finger)")
-    a("--rate-hz", metavar="HZ", default="1000", help="sample rate at boot (default 1000)")
     a("--adc-bits", metavar="N", default="12", help="ADC resolution, 8..16 (default 12)")
-    a("--seed", metavar="N", default="0", help="seed of the sensor's spread, the grasp cycles and the noise")
-    a("--scenario", metavar="NAME", default="grasp", help=f"time course: {', '.join(SCENARIOS)} (default grasp)")
-    a("--hold", metavar="LABEL", help="press the finger onto a jig: flat, radius=25mm, curvature=40/m")
     a("--time-scale", metavar="X", default="1", help="device seconds per wall second (default 1)")
     a("--link", metavar="PATH", help="where to make the port's symlink (default: a temp folder)")
     a("--truth", metavar="FILE", help="write per-frame ground truth to this HDF5 file")
     a("--clock-start-s", metavar="S", default="0",
       help="device clock reading at boot, s (4294 puts its 32-bit microsecond wrap 1 s in)")
-    g = parser.add_argument_group("simulated faults")
-    g.add_argument("--open-tap", metavar="K", help="wire from tap K to its ADC input broken")
-    g.add_argument("--short-taps", metavar="A,B", help="taps A and B shorted together")
-    g.add_argument("--noisy-channel", metavar="K", help="channel K very noisy")
-    g.add_argument("--stuck-channel", metavar="K", help="channel K stuck at one code")
-    g.add_argument("--corrupt-rate", metavar="P", default="0", help="fraction of packets corrupted on the wire")
-    g.add_argument("--drop-rate", metavar="P", default="0", help="fraction of packets never sent")
+    add_finger_arguments(parser, title="the simulated finger and its faults")
+    g = parser.add_argument_group("simulated link faults")
     g.add_argument("--vanish-every", metavar="S", help="the port disappears every S seconds")
     g.add_argument("--outage", metavar="S", default="1", help="how long the port stays away (default 1 s)")
 
@@ -101,24 +130,13 @@ def build_virtual_finger(args):
     from .device import VirtualFinger
 
     rig = load_rig(args.rig)
-    rate = _number(args.rate_hz, "--rate-hz", low=0.1, high=50000.0)
+    settings = finger_settings_from_args(args, rig)
     bits = _number(args.adc_bits, "--adc-bits", kind=int, low=8, high=16)
-    seed = _number(args.seed, "--seed", kind=int, low=0)
     scale = _number(args.time_scale, "--time-scale", low=0.0, low_open=True, high=1e6)
-    if args.scenario not in SCENARIOS:
-        raise UserError(f"--scenario {args.scenario!r}: not known (known: {', '.join(SCENARIOS)})")
-    if args.hold is not None:
-        try:
-            parse_hold_label(args.hold)
-        except UserError as exc:
-            raise UserError(f"--hold: {exc}") from None
-    faults = _faults_from(args)
-    faults.check(rig, names=_FAULT_OPTIONS)
     _check_out_path(args.link, "--link", symlink=True)
     _check_out_path(args.truth, "--truth", symlink=False)
     return VirtualFinger(
-        rig=rig, rate_hz=rate, adc_bits=bits, seed=seed, faults=faults, hold=args.hold,
-        scenario=args.scenario, time_scale=scale, link_path=args.link, truth_path=args.truth,
+        rig=rig, adc_bits=bits, time_scale=scale, link_path=args.link, truth_path=args.truth, **settings,
         clock_start_s=_number(args.clock_start_s, "--clock-start-s", low=0.0),
     )
 
