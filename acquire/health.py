@@ -110,8 +110,18 @@ class HealthThresholds:
     min_frames: int = 20
 
 
+class _Judged:
+    """A row with a verdict: ``reason`` joins its reasons in words."""
+
+    reasons: list[str]
+
+    @property
+    def reason(self) -> str:
+        return "; ".join(self.reasons) if self.reasons else "ok"
+
+
 @dataclass
-class ChannelHealth:
+class ChannelHealth(_Judged):
     """One channel over the window. Codes in LSB, voltages in mV of the excitation."""
 
     index: int
@@ -128,13 +138,9 @@ class ChannelHealth:
     verdict: str = OK
     reasons: list[str] = field(default_factory=list)
 
-    @property
-    def reason(self) -> str:
-        return "; ".join(self.reasons) if self.reasons else "ok"
-
 
 @dataclass
-class SegmentHealth:
+class SegmentHealth(_Judged):
     """Segment k, between tap k and tap k+1 (tap S: the grounded end)."""
 
     index: int
@@ -144,13 +150,9 @@ class SegmentHealth:
     verdict: str = OK
     reasons: list[str] = field(default_factory=list)
 
-    @property
-    def reason(self) -> str:
-        return "; ".join(self.reasons) if self.reasons else "ok"
-
 
 @dataclass
-class LinkHealth:
+class LinkHealth(_Judged):
     frames: int
     frames_lost: int
     bad_packets: int
@@ -158,10 +160,6 @@ class LinkHealth:
     reconnects: int
     verdict: str = OK
     reasons: list[str] = field(default_factory=list)
-
-    @property
-    def reason(self) -> str:
-        return "; ".join(self.reasons) if self.reasons else "ok"
 
 
 @dataclass
