@@ -19,7 +19,7 @@ try:  # Python 3.11+
 except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from .errors import UserError
+from acquire.errors import UserError
 
 __all__ = ["Rig", "RigError", "load_rig", "parse_rig", "default_rig_text", "READOUT_KINDS"]
 

@@ -31,7 +31,7 @@ import numpy as np  # noqa: E402
 
 
 def _calibration(rig):
-    from acquire.calibration import fit_calibration
+    from acquire.core.calibration import fit_calibration
     from acquire.virtual import FingerModel
 
     model = FingerModel(rig=rig, seed=0)
@@ -61,7 +61,7 @@ def main(argv=None) -> int:
     from PyQt5 import QtCore
 
     from acquire.rig import load_rig
-    from acquire.session import LiveSession, VirtualOptions
+    from acquire.sources.live import LiveSession, VirtualOptions
     from display.app import make_app
     from display.window import SensorWindow
 

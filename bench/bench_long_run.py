@@ -19,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from acquire.recording import open_recording
+from acquire.store.recording import open_recording
 from acquire.virtual import VirtualFinger
 
 REPO = Path(__file__).resolve().parents[1]
@@ -54,7 +54,7 @@ def main(argv=None) -> dict:
         try:
             assert vf.wait_ready(timeout_s=10)
             proc = subprocess.Popen(
-                [sys.executable, "-m", "acquire.cli", "record", "--port", vf.path,
+                [sys.executable, "-m", "acquire.commands.cli", "record", "--port", vf.path,
                  "--rig", str(REPO / "acquire" / "rigs" / "demo_finger.toml"), "--out", str(out),
                  "--duration", str(seconds), "--quiet"],
                 stderr=subprocess.PIPE, text=True,

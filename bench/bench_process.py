@@ -35,11 +35,11 @@ from scipy import signal
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
-from acquire.calibration import Hold, fit_calibration, parse_label  # noqa: E402
-from acquire.offline import SPACING_M, process_recording  # noqa: E402
-from acquire.pipeline import process_arrays  # noqa: E402
-from acquire.reconstruct import Reconstructor  # noqa: E402
-from acquire.recording import LIBVER, create_layout  # noqa: E402
+from acquire.core.calibration import Hold, fit_calibration, parse_label  # noqa: E402
+from acquire.commands.offline import SPACING_M, process_recording  # noqa: E402
+from acquire.core.pipeline import process_arrays  # noqa: E402
+from acquire.core.reconstruct import Reconstructor  # noqa: E402
+from acquire.store.recording import LIBVER, create_layout  # noqa: E402
 from acquire.rig import load_rig  # noqa: E402
 from acquire.virtual.model import FingerModel  # noqa: E402
 
@@ -158,7 +158,7 @@ def main(argv=None) -> dict:
     n = 20_000 if args.quick else args.frames
     n_loop = min(n, 2_000 if args.quick else args.loop_frames)
     repeats = 1 if args.quick else args.repeats
-    from acquire.calibration import Calibration
+    from acquire.core.calibration import Calibration
 
     rig = load_rig(None)
     with tempfile.TemporaryDirectory() as tmp:
@@ -179,7 +179,7 @@ def main(argv=None) -> dict:
         cli_out = tmp / "cli.h5"
         t0 = time.perf_counter()
         res = subprocess.run(
-            [sys.executable, "-m", "acquire.cli", "process", str(src), "--calibration", str(cal_path),
+            [sys.executable, "-m", "acquire.commands.cli", "process", str(src), "--calibration", str(cal_path),
              "--out", str(cli_out), "--quiet"],
             capture_output=True, text=True, cwd=REPO, timeout=600,
         )

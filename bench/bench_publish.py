@@ -29,9 +29,9 @@ import numpy as np
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
-from acquire.calibration import Calibration  # noqa: E402
-from acquire.frames import FrameBlock, FrameRing  # noqa: E402
-from acquire.publish import ShapePublisher  # noqa: E402
+from acquire.core.calibration import Calibration  # noqa: E402
+from acquire.link.frames import FrameBlock, FrameRing  # noqa: E402
+from acquire.serve.publish import ShapePublisher  # noqa: E402
 from acquire.rig import load_rig  # noqa: E402
 
 

@@ -28,10 +28,10 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from acquire.calibration import Calibration  # noqa: E402
-from acquire.frames import FrameBlock  # noqa: E402
-from acquire.pipeline import Pipeline  # noqa: E402
-from acquire.reconstruct import Reconstructor  # noqa: E402
+from acquire.core.calibration import Calibration  # noqa: E402
+from acquire.link.frames import FrameBlock  # noqa: E402
+from acquire.core.pipeline import Pipeline  # noqa: E402
+from acquire.core.reconstruct import Reconstructor  # noqa: E402
 from acquire.rig import load_rig  # noqa: E402
 from acquire.virtual.model import FingerModel  # noqa: E402
 

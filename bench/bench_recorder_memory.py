@@ -17,8 +17,8 @@ from pathlib import Path
 
 import numpy as np
 
-from acquire.frames import FrameBlock, FrameRing
-from acquire.recorder import Recorder
+from acquire.link.frames import FrameBlock, FrameRing
+from acquire.store.recorder import Recorder
 
 
 def rss_mb() -> float:

@@ -33,8 +33,8 @@ def make_recording(path: Path, *, minutes: float, rate_hz: float = 1000.0, chunk
     """Write a recording of the virtual finger's model straight with h5py, in the layout. Returns facts."""
     import h5py
 
-    from acquire.calibration import fit_calibration
-    from acquire.recording import LIBVER, create_layout
+    from acquire.core.calibration import fit_calibration
+    from acquire.store.recording import LIBVER, create_layout
     from acquire.rig import load_rig
     from acquire.virtual import FingerModel
 
@@ -83,7 +83,7 @@ def main(argv=None) -> int:
 
     from PyQt5 import QtCore
 
-    from acquire.session import ReplaySource
+    from acquire.sources.live import ReplaySource
     from display.app import make_app
     from display.window import SensorWindow
 

@@ -162,7 +162,7 @@ def _check_new_file(path: str | None, option: str) -> Path | None:
 
 def _live(args, stop: _StopOnSignal) -> int:
     from acquire.rig import load_rig
-    from acquire.session import LiveSession, load_calibration_for, virtual_options_from_args
+    from acquire.sources.live import LiveSession, load_calibration_for, virtual_options_from_args
 
     rig = load_rig(args.rig)
     calibration = load_calibration_for(args.calibration, rig)
@@ -170,7 +170,7 @@ def _live(args, stop: _StopOnSignal) -> int:
     if args.label is not None and record is None:
         raise UserError("--label marks a recording: give --record FILE too")
     if args.label is not None:
-        from acquire.recording import check_label_text
+        from acquire.store.recording import check_label_text
 
         check_label_text(args.label)
     vo = virtual_options_from_args(args, rig) if args.port is None else None
@@ -250,7 +250,7 @@ def _live_headless(session, *, stop: _StopOnSignal, duration_s: float | None) ->
 
 
 def _replay(args, stop: _StopOnSignal) -> int:
-    from acquire.session import ReplaySource
+    from acquire.sources.live import ReplaySource
 
     if not 0.1 <= args.speed <= 20.0:
         raise UserError(f"--speed {args.speed:g}: must be 0.1 .. 20")
@@ -297,9 +297,9 @@ def _replay_headless(src, *, stop: _StopOnSignal, duration_s: float | None) -> N
 
 
 def _health(args, stop: _StopOnSignal) -> int:
-    from acquire.health import HealthMonitor, format_health_table
+    from acquire.core.health import HealthMonitor, format_health_table
     from acquire.rig import load_rig
-    from acquire.session import LiveSession, virtual_options_from_args
+    from acquire.sources.live import LiveSession, virtual_options_from_args
 
     rig = load_rig(args.rig)
     vo = virtual_options_from_args(args, rig) if args.port is None else None

@@ -12,7 +12,7 @@ import numpy as np
 from PyQt5 import QtCore, QtGui, QtSvg, QtWidgets
 
 from acquire.errors import UserError
-from acquire.reconstruct import body_outline
+from acquire.core.reconstruct import body_outline
 
 from .theme import COLOURS, STYLE_SHEET
 from .views import SegmentBars, ShapeView
@@ -140,7 +140,7 @@ def export_recording_shape(*, path, out, time_s: float | None = None, calibratio
     UserError
         Not a recording, no calibration at all, the time outside the recording, or an unwritable image.
     """
-    from acquire.session import ReplaySource
+    from acquire.sources.live import ReplaySource
 
     out_p = _check_out(out)
     src = ReplaySource(path=path, calibration=calibration, window_s=2.0).start()

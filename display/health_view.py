@@ -1,6 +1,6 @@
 """The wiring health window: one row per channel, per segment and for the link, coloured by verdict.
 
-GUI thread only; the :class:`acquire.health.HealthMonitor` it owns copies
+GUI thread only; the :class:`acquire.core.health.HealthMonitor` it owns copies
 frames from the session's ring (memory only) on the window's timers.
 """
 from __future__ import annotations
@@ -9,7 +9,7 @@ import math
 
 from PyQt5 import QtCore, QtGui, QtWidgets
 
-from acquire.health import HealthMonitor, HealthThresholds
+from acquire.core.health import HealthMonitor, HealthThresholds
 
 from .theme import COLOURS, STYLE_SHEET, VERDICT_COLOURS
 from .window import SAFETY_TEXT

@@ -1,7 +1,7 @@
 """The plots of the sensor window: shape, per-segment bars, rolling traces, replay timeline.
 
 Every class here lives on the GUI thread and draws arrays it is handed (from
-an :class:`acquire.session.ViewSnapshot`); none reads a port or a file.
+an :class:`acquire.sources.live.ViewSnapshot`); none reads a port or a file.
 Lengths arrive in metres; pyqtgraph's SI prefixes label the axes in mm.
 """
 from __future__ import annotations
@@ -47,7 +47,7 @@ class ShapeView(pg.PlotWidget):
     ----------
     rig : acquire.rig.Rig
         Body thicknesses and lengths.
-    reconstructor : acquire.reconstruct.Reconstructor
+    reconstructor : acquire.core.reconstruct.Reconstructor
         For the tap indices of the shape points.
 
     Attributes

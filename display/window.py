@@ -1,8 +1,8 @@
-"""The sensor window: live from a :class:`acquire.session.LiveSession` or replayed from a
-:class:`acquire.session.ReplaySource`.
+"""The sensor window: live from a :class:`acquire.sources.live.LiveSession` or replayed from a
+:class:`acquire.sources.live.ReplaySource`.
 
 A ``QTimer`` redraw (60 Hz by default) takes the source's newest
-:class:`~acquire.session.ViewSnapshot` and calls ``setData``; the window never
+:class:`~acquire.sources.live.ViewSnapshot` and calls ``setData``; the window never
 waits on a source, a port or a file. Everything here runs on the GUI thread.
 """
 from __future__ import annotations
@@ -17,7 +17,7 @@ import numpy as np
 from PyQt5 import QtCore, QtGui, QtWidgets
 
 from acquire.errors import UserError
-from acquire.reconstruct import body_outline
+from acquire.core.reconstruct import body_outline
 
 from .theme import COLOURS, STYLE_SHEET
 from .views import SegmentBars, ShapeView, Timeline, TraceView

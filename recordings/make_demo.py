@@ -33,9 +33,9 @@ HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 sys.path.insert(0, str(REPO))
 
-from acquire.cli import main as tapcurve  # noqa: E402
-from acquire.reader import SerialReader  # noqa: E402
-from acquire.recorder import Recorder  # noqa: E402
+from acquire.commands.cli import main as tapcurve  # noqa: E402
+from acquire.link.reader import SerialReader  # noqa: E402
+from acquire.store.recorder import Recorder  # noqa: E402
 from acquire.rig import load_rig  # noqa: E402
 from acquire.virtual import VirtualFinger  # noqa: E402
 

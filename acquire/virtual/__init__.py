@@ -6,8 +6,8 @@ electrics, ADC), pure and deterministic; :class:`VirtualFinger` puts it on a
 real pty speaking wire protocol v1; the command line part serves
 ``tapcurve virtual-device``.
 """
-from .cli import add_virtual_device_arguments, run_virtual_device
-from .device import VirtualFinger
-from .model import Faults, FingerModel
+from acquire.virtual.cli import add_virtual_device_arguments, run_virtual_device
+from acquire.virtual.device import VirtualFinger
+from acquire.virtual.model import Faults, FingerModel
 
 __all__ = ["VirtualFinger", "FingerModel", "Faults", "add_virtual_device_arguments", "run_virtual_device"]

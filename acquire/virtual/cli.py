@@ -11,9 +11,9 @@ import signal
 import threading
 from pathlib import Path
 
-from ..errors import UserError
-from ..rig import load_rig
-from .model import SCENARIOS, Faults, parse_hold_label
+from acquire.errors import UserError
+from acquire.rig import load_rig
+from acquire.virtual.model import SCENARIOS, Faults, parse_hold_label
 
 __all__ = ["add_virtual_device_arguments", "run_virtual_device", "add_finger_arguments", "finger_settings_from_args"]
 
@@ -127,7 +127,7 @@ def build_virtual_finger(args):
 
     Raises UserError naming the option at fault.
     """
-    from .device import VirtualFinger
+    from acquire.virtual.device import VirtualFinger
 
     rig = load_rig(args.rig)
     settings = finger_settings_from_args(args, rig)

@@ -32,9 +32,9 @@ import numpy as np
 
 import firmware_protocol as fp
 
-from ..errors import UserError
-from ..rig import Rig, load_rig
-from .model import SCENARIOS, Faults, FingerModel, parse_hold_label
+from acquire.errors import UserError
+from acquire.rig import Rig, load_rig
+from acquire.virtual.model import SCENARIOS, Faults, FingerModel, parse_hold_label
 
 __all__ = ["VirtualFinger", "DEVICE_NAME", "FATE_NAMES"]
 

@@ -37,8 +37,8 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 
-from ..errors import UserError
-from ..rig import Rig, load_rig
+from acquire.errors import UserError
+from acquire.rig import Rig, load_rig
 
 __all__ = [
     "FingerModel",

@@ -33,8 +33,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from acquire.reader import SerialReader
-from acquire.recorder import Recorder
+from acquire.link.reader import SerialReader
+from acquire.store.recorder import Recorder
 from acquire.rig import load_rig
 from acquire.virtual import VirtualFinger
 
@@ -50,7 +50,7 @@ HOLDS = ["flat", "curvature=15/m", "radius=40mm", "radius=25mm", "radius=20mm", 
 
 
 def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "acquire.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "acquire.commands.cli", *args], capture_output=True, text=True,
                           timeout=timeout_s, cwd=REPO)
 
 

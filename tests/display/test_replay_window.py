@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from PyQt5 import QtCore, QtGui
 
-from acquire.session import LiveSession, ReplaySource
+from acquire.sources.live import LiveSession, ReplaySource
 from display.window import SensorWindow
 
 REPO = Path(__file__).resolve().parents[2]
@@ -134,7 +134,7 @@ def test_export_from_the_command_line_headless(recording, tmp_path, artifacts):
     env["PYTHONPATH"] = str(REPO)
     for suffix in ("png",):  # SVG goes through the same figure (tested from the window above)
         out = tmp_path / f"shape.{suffix}"
-        r = subprocess.run([sys.executable, "-m", "acquire.cli", "export", str(recording), "--out", str(out),
+        r = subprocess.run([sys.executable, "-m", "acquire.commands.cli", "export", str(recording), "--out", str(out),
                             "--time", "1.25"], env=env, capture_output=True, text=True, timeout=60)
         assert r.returncode == 0, r.stderr
         assert out.is_file() and out.stat().st_size > 1000
@@ -142,6 +142,6 @@ def test_export_from_the_command_line_headless(recording, tmp_path, artifacts):
     assert (img.width(), img.height()) == (1000, 720)
     img.save(str(artifacts / "export_cli_shape.png"))
     # a time outside the recording is a one-line error, exit 2
-    r = subprocess.run([sys.executable, "-m", "acquire.cli", "export", str(recording), "--out",
+    r = subprocess.run([sys.executable, "-m", "acquire.commands.cli", "export", str(recording), "--out",
                         str(tmp_path / "x.png"), "--time", "999"], env=env, capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and r.stderr.count("\n") == 1 and "--time 999" in r.stderr

@@ -1,0 +1,128 @@
+"""``tapcurve inspect``: what a recording holds, in a few lines."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+
+from acquire.store.recording import open_recording
+
+__all__ = ["inspect_summary", "format_summary"]
+
+
+def inspect_summary(path) -> dict:
+    """Summary of a recording as plain data (JSON-ready).
+
+    Opens (and if needed recovers) the file; reads the time and sequence
+    columns, not the codes.
+    """
+    with open_recording(path) as rec:
+        n = rec.n_frames
+        raw = rec.file["raw"]
+        seq = raw["seq"][:n]
+        t_dev = raw["t_device_s"][:n]
+        hello = rec.hello
+        gaps = int(np.count_nonzero(np.diff(seq) != 1)) if n > 1 else 0
+        missing = int((np.diff(seq) - 1).clip(min=0).sum()) if n > 1 else 0
+        duration = float(t_dev[-1] - t_dev[0]) if n > 1 else 0.0
+        rate = (n - 1) / duration if duration > 0 else float(hello.get("rate_hz", 0.0))
+        cal = rec.calibration_json
+        cal_info = None
+        if cal is not None:
+            try:
+                doc = json.loads(cal)
+                model = doc.get("model")
+                name = model.get("name", "?") if isinstance(model, dict) else model
+                cal_info = {"model": name, "created_utc": doc.get("created_utc"),
+                            "rig_sha256": (doc.get("rig") or {}).get("sha256") if isinstance(doc.get("rig"), dict) else None}
+            except json.JSONDecodeError:
+                cal_info = {"error": "calibration_json is not JSON"}
+        return {
+            "file": str(rec.path),
+            "recovered": rec.recovered,
+            "still_recording": rec.live,
+            "created_utc": str(rec.file.attrs.get("created_utc", "")),
+            "software_version": str(rec.file.attrs.get("software_version", "")),
+            "device": hello,
+            "frames": n,
+            "channels": rec.channel_names,
+            "duration_s": duration,
+            "rate_hz": rate,
+            "seq_first": int(seq[0]) if n else None,
+            "seq_last": int(seq[-1]) if n else None,
+            "seq_gaps": gaps,
+            "frames_missing_by_seq": missing,
+            "counters": rec.counters(),
+            "labels": [
+                {"text": lb.text, "t_start_s": lb.t_start_s, "t_end_s": lb.t_end_s} for lb in rec.labels()
+            ],
+            "events": [
+                {"t_host_s": t, "frame": fr, "kind": k, "text": x} for t, fr, k, x in rec.events()
+            ],
+            "calibration": cal_info,
+            "clock": rec.clock(),
+            "derived": rec.has_derived,
+        }
+
+
+def format_summary(s: dict) -> str:
+    """Human-readable form of :func:`inspect_summary`."""
+    lines = [f"{s['file']}"]
+    if s["recovered"]:
+        lines.append("  (was left unclosed by a stopped recorder; recovered: it now opens anywhere)")
+    if s["still_recording"]:
+        lines.append("  (a recorder is still writing this file; figures are as of now)")
+    dev = s["device"]
+    lines.append(
+        f"  device      {dev.get('firmware', '?')}, {dev.get('channels', '?')} channels, "
+        f"{dev.get('adc_bits', '?')}-bit, nominal {dev.get('rate_hz', '?')} Hz"
+    )
+    lines.append(f"  created     {s['created_utc']} (tapcurve {s['software_version']})")
+    lines.append(f"  frames      {s['frames']} over {s['duration_s']:.3f} s ({s['rate_hz']:.1f} frames/s)")
+    lines.append(f"  channels    {', '.join(s['channels'])}")
+    if s["frames"]:
+        lines.append(
+            f"  seq         {s['seq_first']} .. {s['seq_last']}, {s['seq_gaps']} gaps, "
+            f"{s['frames_missing_by_seq']} frames missing"
+        )
+    c = s["counters"]
+    if c:
+        bad = sum(v for k, v in c.items() if k.startswith("drop_"))
+        causes = ", ".join(f"{k[5:]} {v}" for k, v in c.items() if k.startswith("drop_") and v)
+        lines.append(
+            f"  link        {c.get('frames_lost', 0)} frames lost, {bad} bad packets"
+            + (f" ({causes})" if causes else "")
+            + f", {c.get('reconnects', 0)} reconnects, {c.get('reboots', 0)} device reboots"
+        )
+        lines.append(
+            f"  device flags {c.get('late_frames', 0)} late samples, {c.get('tx_overflow_frames', 0)} transmit overflows"
+        )
+    if s["labels"]:
+        lines.append(f"  labels      {len(s['labels'])}")
+        for lb in s["labels"]:
+            lines.append(f"    {lb['t_start_s']:9.3f} .. {lb['t_end_s']:9.3f} s  {lb['text']}")
+    else:
+        lines.append("  labels      none")
+    events = [e for e in s["events"] if e["kind"] != "hello"]
+    if events:
+        lines.append(f"  events      {len(events)}")
+        for e in events[:20]:
+            lines.append(f"    {e['t_host_s']:9.3f} s  frame {e['frame']:>8}  {e['kind']}: {e['text']}")
+        if len(events) > 20:
+            lines.append(f"    ... {len(events) - 20} more")
+    clock = s.get("clock")
+    if clock and clock["span_s"] < 60.0:
+        # over seconds, link latency jitter (ms) dwarfs any clock drift (us)
+        lines.append(f"  clock       recording too short for a drift estimate ({clock['span_s']:.0f} s; needs a minute)")
+    elif clock and clock["points"] >= 2 and clock["drift_ppm"] == clock["drift_ppm"]:
+        lines.append(
+            f"  clock       host - device drift {clock['drift_ppm']:+.1f} ppm, offset {clock['offset_s'] * 1e3:.2f} ms "
+            f"(fit over {clock['span_s']:.0f} s of device time, {clock['points']} points)"
+        )
+    if s["calibration"]:
+        cal = s["calibration"]
+        lines.append(f"  calibration {cal.get('model', '?')} from {cal.get('created_utc', '?')}")
+    else:
+        lines.append("  calibration none")
+    lines.append(f"  derived     {'yes' if s['derived'] else 'no'}")
+    return "\n".join(lines)

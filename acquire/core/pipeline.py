@@ -1,0 +1,329 @@
+"""The numeric chain, frames to shape: codes -> resistance -> filtered -> curvature -> points.
+
+One :class:`Pipeline` serves the live path (blocks of a few frames from the
+ring) and offline processing (:func:`process_arrays`, :func:`iter_processed`);
+its output does not depend on how the stream is cut into blocks.
+
+Order: readout (stateless) -> wiring checks -> filters on resistance (state)
+-> calibration (stateless) -> reconstruction (stateless). Filters act on
+resistance, before calibration, so a calibration can be swapped or re-tared
+without disturbing the filter state.
+
+Faults: with ``mask_faults`` (default) a segment reading the wiring checks call
+physically meaningless (taps out of order, tap 0 at full scale, a saturated
+tap; see :attr:`acquire.core.readout.ChainCheck.unusable`) goes into the filters as
+NaN, so it does not drag the filtered value; the spike filter bridges a short
+fault, a longer one gives NaN until the reading is back. ``chain_ok`` reports
+every frame with any failed check, out-of-range resistance included.
+"""
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass
+from typing import Iterator
+
+import numpy as np
+
+from acquire.core.calibration import Calibration
+from acquire.errors import UserError
+from acquire.core.filters import FilterChain, _nanmedian_last_axis, filtfilt_zero_phase
+from acquire.link.frames import FrameBlock
+from acquire.core.readout import ChainCheck, make_readout
+from acquire.core.reconstruct import Reconstructor
+from acquire.rig import Rig
+
+__all__ = ["Processed", "Pipeline", "process_arrays", "iter_processed"]
+
+
+@dataclass
+class Processed:
+    """Result of one block of N frames (arrays new, owned by the receiver).
+
+    Attributes
+    ----------
+    resistance_ohm : ndarray of float64, shape (N, S)
+        As read, ohm (NaN where unmeasurable).
+    filtered_ohm : ndarray of float64, shape (N, S)
+        After the spike filter and low-pass, ohm.
+    curvature_per_m : ndarray of float32, shape (N, S), or None
+        Mean curvature of each segment, 1/m; None without a calibration.
+    xy_m : ndarray of float32, shape (N, P, 2), or None
+        Shape points in the base frame, m, at :attr:`Pipeline.s_m`.
+    chain_ok : ndarray of bool, shape (N,)
+        Every wiring check passed.
+    outside_calibration : ndarray of bool, shape (N, S), or None
+        Curvature extrapolated beyond the calibrated range.
+    chain : ChainCheck
+        The individual wiring flags.
+    """
+
+    resistance_ohm: np.ndarray
+    filtered_ohm: np.ndarray
+    curvature_per_m: np.ndarray | None
+    xy_m: np.ndarray | None
+    chain_ok: np.ndarray
+    outside_calibration: np.ndarray | None
+    chain: ChainCheck
+
+    def __len__(self) -> int:
+        return int(self.resistance_ohm.shape[0])
+
+    @staticmethod
+    def concat(parts: list["Processed"]) -> "Processed":
+        """Join consecutive results (all with or all without calibration)."""
+        def cat(name):
+            vals = [getattr(p, name) for p in parts]
+            return None if any(v is None for v in vals) else np.concatenate(vals)
+
+        chain = ChainCheck(**{
+            f: np.concatenate([getattr(p.chain, f) for p in parts])
+            for f in ("order_violated", "top_at_full_scale", "out_of_range", "saturated")
+        })
+        return Processed(
+            resistance_ohm=cat("resistance_ohm"),
+            filtered_ohm=cat("filtered_ohm"),
+            curvature_per_m=cat("curvature_per_m"),
+            xy_m=cat("xy_m"),
+            chain_ok=cat("chain_ok"),
+            outside_calibration=cat("outside_calibration"),
+            chain=chain,
+        )
+
+
+class Pipeline:
+    """Frames to shape for one rig.
+
+    Parameters
+    ----------
+    rig : Rig
+    calibration : Calibration or None
+        Without one, curvature and shape are None.
+    rate_hz : float
+        Device sample rate, Hz (for the low-pass).
+    adc_bits : int
+        From the device's hello.
+    spacing_m : float
+        Largest spacing of shape points, m.
+    method : {"smooth", "arcs"}
+        See :mod:`acquire.core.reconstruct`.
+    mask_faults : bool
+        See the module docstring.
+
+    Threads: :meth:`process` and :meth:`reset` run on the processing thread
+    (they are serialised by a lock, so another thread may call :meth:`reset`
+    too). :meth:`set_calibration` and :meth:`tare_from` may be called from any
+    thread (the GUI): the new calibration takes effect at the next block.
+
+    Raises
+    ------
+    UserError
+        The calibration does not fit the rig, or the rig's filters do not fit
+        the sample rate.
+    """
+
+    def __init__(
+        self,
+        *,
+        rig: Rig,
+        calibration: Calibration | None = None,
+        rate_hz: float,
+        adc_bits: int,
+        spacing_m: float = 0.001,
+        method: str = "smooth",
+        mask_faults: bool = True,
+    ):
+        self.rig = rig
+        self.rate_hz = float(rate_hz)
+        self.adc_bits = int(adc_bits)
+        self.mask_faults = bool(mask_faults)
+        self.readout = make_readout(rig, adc_bits=adc_bits)
+        self.filters = FilterChain.from_rig(rig, rate_hz=rate_hz, n_signals=rig.n_segments)
+        self.reconstructor = Reconstructor.from_rig(rig, spacing_m=spacing_m, method=method)
+        self._cal_lock = threading.Lock()
+        self._run_lock = threading.Lock()
+        self.calibration_notes: list[str] = []
+        self._calibration: Calibration | None = None
+        if calibration is not None:
+            self.set_calibration(calibration)
+
+    @property
+    def s_m(self) -> np.ndarray:
+        """(P,) arc length of each shape point, m (read-only)."""
+        return self.reconstructor.s_m
+
+    @property
+    def calibration(self) -> Calibration | None:
+        with self._cal_lock:
+            return self._calibration
+
+    def set_calibration(self, calibration: Calibration | None) -> None:
+        """Use another calibration (or none) from the next block on; any thread.
+
+        Raises
+        ------
+        UserError
+            It does not fit the rig (segment count or readout kind).
+        """
+        notes = [] if calibration is None else calibration.check_rig(self.rig)
+        with self._cal_lock:
+            self._calibration = calibration
+            self.calibration_notes = notes
+
+    def tare_from(self, resistance_ohm: np.ndarray) -> Calibration:
+        """Re-zero the calibration at the median of frames held flat; any thread.
+
+        Parameters
+        ----------
+        resistance_ohm : array_like, shape (n, S)
+            Flat frames, ohm (e.g. ``filtered_ohm`` of the last second).
+
+        Returns
+        -------
+        Calibration
+            The tared calibration, now in use.
+
+        Raises
+        ------
+        UserError
+            No calibration loaded, or a segment has no valid frame.
+        """
+        cal = self.calibration
+        if cal is None:
+            raise UserError("cannot tare: no calibration loaded")
+        r = np.asarray(resistance_ohm, dtype=np.float64)
+        if r.ndim != 2 or r.shape[1] != self.rig.n_segments or r.shape[0] == 0:
+            raise UserError(f"cannot tare: need frames of {self.rig.n_segments} segments, got shape {r.shape}")
+        med = _nanmedian_last_axis(r.T)  # NaN for a segment without a valid frame; tared() refuses it
+        tared = cal.tared(med)
+        self.set_calibration(tared)
+        return tared
+
+    def reset(self) -> None:
+        """Forget the filter state (after a reconnect or a jump in the stream)."""
+        with self._run_lock:
+            self.filters.reset()
+
+    def process(self, block: FrameBlock) -> Processed:
+        """Process the next block of the stream (processing thread)."""
+        return self.process_codes(block.codes)
+
+    def process_codes(self, codes: np.ndarray) -> Processed:
+        """As :meth:`process`, from codes of shape (N, C) alone."""
+        with self._run_lock:
+            cal = self.calibration  # one calibration per block
+            resistance, check, to_filter = self._read(codes)
+            filtered = self.filters.process(to_filter)
+            return self._finish(resistance, filtered, check, cal)
+
+    def _read(self, codes: np.ndarray):
+        codes = np.asarray(codes)
+        if codes.ndim != 2 or codes.shape[1] != self.rig.n_channels:
+            raise ValueError(f"expected codes of shape (N, {self.rig.n_channels}), got {codes.shape}")
+        resistance, check = self.readout.read(codes)
+        to_filter = np.where(check.unusable, np.nan, resistance) if self.mask_faults else resistance
+        return resistance, check, to_filter
+
+    def _finish(self, resistance, filtered, check, cal) -> Processed:
+        if cal is None:
+            curvature = xy = outside = None
+        else:
+            k, outside = cal.evaluate(filtered)
+            xy = self.reconstructor.shape_xy(k, dtype=np.float32)
+            curvature = k.astype(np.float32)
+        return Processed(
+            resistance_ohm=resistance,
+            filtered_ohm=filtered,
+            curvature_per_m=curvature,
+            xy_m=xy,
+            chain_ok=check.ok,
+            outside_calibration=outside,
+            chain=check,
+        )
+
+
+def iter_processed(
+    codes,
+    *,
+    rig: Rig,
+    calibration: Calibration | None,
+    rate_hz: float,
+    adc_bits: int,
+    spacing_m: float = 0.001,
+    method: str = "smooth",
+    zero_phase: bool = False,
+    chunk_frames: int = 65536,
+    mask_faults: bool = True,
+) -> Iterator[tuple[int, Processed]]:
+    """Process a whole recording chunk by chunk (offline; any thread).
+
+    Parameters
+    ----------
+    codes : array_like or h5py.Dataset, shape (N, C)
+        Sliced ``chunk_frames`` rows at a time, so a dataset is never read whole.
+    zero_phase : bool
+        Filter with :func:`acquire.core.filters.filtfilt_zero_phase` (no delay;
+        needs all resistances in memory, 8*S bytes per frame) instead of the
+        causal live filters.
+    Other parameters as for :class:`Pipeline`.
+
+    Yields
+    ------
+    (start, Processed)
+        Frame index of the chunk's first frame, and its results.
+    """
+    pipe = Pipeline(
+        rig=rig, calibration=calibration, rate_hz=rate_hz, adc_bits=adc_bits,
+        spacing_m=spacing_m, method=method, mask_faults=mask_faults,
+    )
+    n = int(codes.shape[0])
+    step = max(1, int(chunk_frames))
+    if not zero_phase:
+        for start in range(0, n, step):
+            yield start, pipe.process_codes(np.asarray(codes[start:start + step]))
+        return
+    # zero phase: read everything to resistance first, filter forwards and backwards, then finish by chunk
+    reads = [pipe._read(np.asarray(codes[start:start + step])) for start in range(0, n, step)]
+    if not reads:
+        return
+    to_filter = np.concatenate([r[2] for r in reads])
+    filtered = filtfilt_zero_phase(
+        to_filter, rate_hz=rate_hz, cutoff_hz=rig.lowpass_hz, order=rig.lowpass_order,
+        spike_window=rig.spike_window,
+    )
+    cal = pipe.calibration
+    for i, (resistance, check, _) in enumerate(reads):
+        start = i * step
+        yield start, pipe._finish(resistance, filtered[start:start + resistance.shape[0]], check, cal)
+
+
+def process_arrays(
+    codes,
+    *,
+    rig: Rig,
+    calibration: Calibration | None,
+    rate_hz: float,
+    adc_bits: int,
+    spacing_m: float = 0.001,
+    method: str = "smooth",
+    zero_phase: bool = False,
+    chunk_frames: int = 65536,
+    mask_faults: bool = True,
+) -> Processed:
+    """All of :func:`iter_processed` joined into one :class:`Processed`.
+
+    Mind the memory of ``xy_m`` (8 * P bytes per frame); for long recordings
+    write chunk by chunk from :func:`iter_processed` instead.
+    """
+    parts = [
+        p for _, p in iter_processed(
+            codes, rig=rig, calibration=calibration, rate_hz=rate_hz, adc_bits=adc_bits,
+            spacing_m=spacing_m, method=method, zero_phase=zero_phase,
+            chunk_frames=chunk_frames, mask_faults=mask_faults,
+        )
+    ]
+    if not parts:
+        return Pipeline(
+            rig=rig, calibration=calibration, rate_hz=rate_hz, adc_bits=adc_bits,
+            spacing_m=spacing_m, method=method, mask_faults=mask_faults,
+        ).process_codes(np.zeros((0, rig.n_channels), dtype=np.uint16))
+    return Processed.concat(parts)

@@ -1,0 +1,159 @@
+"""The serial reader against the virtual finger on a real pty: handshake, commands, a port that vanishes."""
+from __future__ import annotations
+
+import json
+import time
+
+import numpy as np
+import pytest
+
+from acquire.link.reader import SerialReader
+from acquire.store.recorder import Recorder
+from acquire.store.recording import open_recording
+from acquire.rig import load_rig
+
+
+def wait_for(predicate, timeout_s: float, what: str) -> None:
+    deadline = time.monotonic() + timeout_s
+    while not predicate():
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out waiting for {what}")
+        time.sleep(0.01)
+
+
+def test_handshake_stream_and_rate(finger):
+    reader = SerialReader(port=finger.path)
+    reader.start()
+    try:
+        assert reader.n_channels == 6 and reader.rate_hz == 1000
+        cur = reader.ring.cursor(from_oldest=True)
+        wait_for(lambda: cur.pending >= 500, 10, "500 frames")
+        block = cur.read()
+        assert (np.diff(block.seq) == 1).all()
+        assert np.allclose(np.diff(block.t_device_s), 1e-3)
+        # a command and its reply; the reader follows the new rate
+        assert reader.send_command(b"RATE 500\n") == "OK RATE 500"
+        assert reader.rate_hz == 500
+        assert reader.send_command(b"JUMP\n").startswith("ERR")
+        before = cur.read()
+        wait_for(lambda: cur.pending >= 200, 10, "frames at 500 Hz")
+        after = cur.read()
+        assert np.allclose(np.diff(after.t_device_s), 2e-3)
+        assert reader.counters["frames_lost"] == 0
+    finally:
+        reader.stop()
+
+
+def _record(reader, path):
+    rig = load_rig(None)
+    rec = Recorder(
+        path=path,
+        ring=reader.ring,
+        rig_toml=rig.text,
+        device_hello=json.dumps(reader.hello),
+        channel_names=rig.channels,
+        events=reader.events,
+        counters=reader.all_counters,
+    )
+    rec.start()
+    return rec
+
+
+def test_device_reboots_recording_goes_on(finger, tmp_path):
+    reader = SerialReader(port=finger.path)
+    reader.start()
+    rec = _record(reader, tmp_path / "reboot.h5")
+    try:
+        wait_for(lambda: reader.counters["frames"] >= 500, 10, "frames before the outage")
+        finger.vanish(outage_s=0.5, reboot=True)  # cable pulled, board reset, plugged in again
+        wait_for(lambda: reader.counters["reboots"] == 1, 15, "the reader to see the reboot")
+        n_at_reboot = reader.counters["frames"]
+        wait_for(lambda: reader.counters["frames"] >= n_at_reboot + 500, 10, "frames after the reboot")
+    finally:
+        reader.stop()
+        rec.stop()
+    assert rec.error is None
+    with open_recording(tmp_path / "reboot.h5") as f:
+        block = f.frames()
+        kinds = [e[2] for e in f.events()]
+        reboot_row = next(e[1] for e in f.events() if e[2] == "reboot")
+    assert {"disconnected", "reconnected", "reboot"} <= set(kinds)
+    # one column, one meaning: seq and device time keep increasing through the new epoch
+    assert (np.diff(block.seq) == 1).all()
+    dt = np.diff(block.t_device_s)
+    assert (dt > 0).all()
+    jump = block.t_device_s[reboot_row] - block.t_device_s[reboot_row - 1]
+    assert 0.4 < jump < 3.0  # about the outage, measured on the host clock
+    assert reader.counters["frames_lost"] == 0
+
+
+def test_cable_pulled_device_kept_running(finger, tmp_path):
+    reader = SerialReader(port=finger.path)
+    reader.start()
+    try:
+        wait_for(lambda: reader.counters["frames"] >= 300, 10, "frames before the outage")
+        finger.vanish(outage_s=0.4, reboot=False)
+        wait_for(lambda: reader.counters["reconnects"] == 1, 15, "the reconnect")
+        n = reader.counters["frames"]
+        wait_for(lambda: reader.counters["frames"] >= n + 300, 10, "frames after the outage")
+    finally:
+        reader.stop()
+    assert reader.counters["reboots"] == 0
+    # the frames the board made while no one listened are counted as lost, about 0.4 s worth
+    assert 200 <= reader.counters["frames_lost"] <= 2000
+
+
+def test_host_stamps_are_monotonic_clock(finger):
+    """Host receive times come from CLOCK_MONOTONIC (Python's time.monotonic), which NTP steps,
+    daylight-saving changes and manual clock setting do not move (POSIX clock_gettime(2):
+    CLOCK_MONOTONIC "cannot be set"). A wall-clock stamp would fall outside this window."""
+    reader = SerialReader(port=finger.path)
+    before = time.monotonic()
+    reader.start()
+    try:
+        cur = reader.ring.cursor(from_oldest=True)
+        wait_for(lambda: cur.pending >= 300, 10, "frames")
+        block = cur.read()
+        after = time.monotonic()
+    finally:
+        reader.stop()
+    assert before <= block.t_host_s.min() and block.t_host_s.max() <= after
+    assert (np.diff(block.t_host_s) >= 0).all()
+
+
+def test_long_silent_gap_is_counted_not_folded():
+    """40 s without frames at 1 kHz: the 16-bit seq folds (40,001 mod 65,536 looks like a step back), but the
+    32-bit device clock tells the true gap; the frames are counted as lost, seq jumps by the true amount."""
+    from firmware_protocol import SampleBlock
+
+    reader = SerialReader(port="unused")
+    reader.hello = {"channels": 1, "rate_hz": 1000.0, "adc_bits": 12}
+    from acquire.link.frames import FrameRing
+
+    reader.ring = FrameRing(capacity_frames=1000, n_channels=1)
+    cur = reader.ring.cursor()
+
+    def block(seqs, t_us):
+        n = len(seqs)
+        return SampleBlock(np.array(seqs, np.uint16), np.array(t_us, np.uint32), np.zeros(n, np.uint8),
+                           np.zeros((n, 1), np.uint16))
+
+    reader._push_samples(block([7, 8, 9], [7000, 8000, 9000]), 1.0)
+    gap = 40_001  # frames 10 .. 40_009 never arrived
+    s = 9 + gap
+    reader._push_samples(block([s % 65536, (s + 1) % 65536], [s * 1000, (s + 1) * 1000]), 41.0)
+    seq = cur.read().seq
+    assert seq.tolist() == [7, 8, 9, s, s + 1]
+    assert reader.counters["frames_lost"] == gap - 1
+    assert reader.counters["seq_discontinuities"] == 0
+
+
+def test_hello_checks():
+    from acquire.link.reader import _hello_problem
+
+    good = {"protocol": 1, "channels": 6, "rate_hz": 1000, "adc_bits": 12, "firmware": "x"}
+    assert _hello_problem(good) is None
+    for key, bad, words in [("protocol", 2, "protocol 2"), ("adc_bits", "twelve", "adc_bits"),
+                            ("adc_bits", 40, "adc_bits 40"), ("channels", 0, "channels 0"),
+                            ("rate_hz", -5, "rate_hz -5")]:
+        assert words in _hello_problem(dict(good, **{key: bad}))
