@@ -61,7 +61,8 @@ def main(argv=None) -> int:
     from PyQt5 import QtCore
 
     from acquire.rig import load_rig
-    from acquire.sources.live import LiveSession, VirtualOptions
+    from acquire.session import Session as LiveSession
+    from acquire.sources.virtual import VirtualOptions
     from display.app import make_app
     from display.window import SensorWindow
 

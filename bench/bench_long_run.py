@@ -54,7 +54,7 @@ def main(argv=None) -> dict:
         try:
             assert vf.wait_ready(timeout_s=10)
             proc = subprocess.Popen(
-                [sys.executable, "-m", "acquire.commands.cli", "record", "--port", vf.path,
+                [sys.executable, "-m", "display.cli", "record", "--port", vf.path,
                  "--rig", str(REPO / "acquire" / "rigs" / "demo_finger.toml"), "--out", str(out),
                  "--duration", str(seconds), "--quiet"],
                 stderr=subprocess.PIPE, text=True,

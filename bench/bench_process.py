@@ -36,7 +36,8 @@ REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
 from acquire.core.calibration import Hold, fit_calibration, parse_label  # noqa: E402
-from acquire.commands.offline import SPACING_M, process_recording  # noqa: E402
+from acquire.commands.common import SPACING_M
+from acquire.commands.process import process_recording  # noqa: E402
 from acquire.core.pipeline import process_arrays  # noqa: E402
 from acquire.core.reconstruct import Reconstructor  # noqa: E402
 from acquire.store.recording import LIBVER, create_layout  # noqa: E402
@@ -179,7 +180,7 @@ def main(argv=None) -> dict:
         cli_out = tmp / "cli.h5"
         t0 = time.perf_counter()
         res = subprocess.run(
-            [sys.executable, "-m", "acquire.commands.cli", "process", str(src), "--calibration", str(cal_path),
+            [sys.executable, "-m", "display.cli", "process", str(src), "--calibration", str(cal_path),
              "--out", str(cli_out), "--quiet"],
             capture_output=True, text=True, cwd=REPO, timeout=600,
         )

@@ -33,7 +33,7 @@ def main(argv=None) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         link = Path(tmp) / "finger"
         dev = subprocess.Popen(
-            [sys.executable, "-m", "acquire.commands.cli", "virtual-device", "--rig", str(RIG16),
+            [sys.executable, "-m", "display.cli", "virtual-device", "--rig", str(RIG16),
              "--rate-hz", str(rate), "--link", str(link)],
             stdout=subprocess.PIPE, text=True,
         )
@@ -43,7 +43,7 @@ def main(argv=None) -> dict:
             before = resource.getrusage(resource.RUSAGE_CHILDREN)
             t0 = time.monotonic()
             rec = subprocess.run(
-                [sys.executable, "-m", "acquire.commands.cli", "record", "--port", port, "--rig", str(RIG16),
+                [sys.executable, "-m", "display.cli", "record", "--port", port, "--rig", str(RIG16),
                  "--out", str(out), "--duration", str(duration), "--quiet"],
                 capture_output=True, text=True, timeout=duration * 3 + 60,
             )

@@ -83,7 +83,7 @@ def main(argv=None) -> int:
 
     from PyQt5 import QtCore
 
-    from acquire.sources.live import ReplaySource
+    from acquire.sources.replay import ReplaySource
     from display.app import make_app
     from display.window import SensorWindow
 

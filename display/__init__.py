@@ -1,7 +1,7 @@
 """tapcurve's windows (Qt, pyqtgraph): live and replay view, wiring health, image export.
 
 Nothing in this package reads a port or an HDF5 file: the sources in
-:mod:`acquire.sources.live` do, on their own threads, and publish state that the
+:mod:`acquire.session` and :mod:`acquire.sources` do, on their own threads, and publish state that the
 windows' timers pull. Import :mod:`display.app` for the command line entry.
 """
 

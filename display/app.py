@@ -24,6 +24,8 @@ import time
 from pathlib import Path
 
 from acquire.errors import UserError
+from acquire.session.signals import StopSignals
+from acquire.session.status import status_line
 
 __all__ = ["run_command", "display_available", "make_app", "exec_app"]
 
@@ -66,34 +68,7 @@ def make_app():
     return app
 
 
-class _StopOnSignal:
-    """SIGINT/SIGTERM set :attr:`event` (and quit a running Qt loop) instead of raising.
-
-    Installed for the whole command, from before the session starts, so a
-    Ctrl-C while the window is still being built stops as cleanly as one later.
-    """
-
-    def __init__(self):
-        self.event = threading.Event()
-        self.app = None
-        self._old = {}
-
-    def _on_signal(self, signum, frame) -> None:
-        self.event.set()
-        if self.app is not None:
-            self.app.quit()
-
-    def __enter__(self):
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            self._old[sig] = signal.signal(sig, self._on_signal)
-        return self
-
-    def __exit__(self, *exc):
-        for sig, old in self._old.items():
-            signal.signal(sig, old)
-
-
-def exec_app(app, *, stop: _StopOnSignal, duration_s: float | None = None) -> bool:
+def exec_app(app, *, stop: StopSignals, duration_s: float | None = None) -> bool:
     """Run the Qt event loop until the last window closes, a signal, or ``duration_s``.
 
     Returns True if a signal ended it (or came before it started).
@@ -102,7 +77,7 @@ def exec_app(app, *, stop: _StopOnSignal, duration_s: float | None = None) -> bo
 
     if stop.event.is_set():
         return True
-    stop.app = app
+    stop.add_hook(app.quit)
     # Qt's loop is C++: without a periodic return to Python a signal waits for the next event
     wake = QtCore.QTimer()
     wake.timeout.connect(lambda: None)
@@ -114,7 +89,7 @@ def exec_app(app, *, stop: _StopOnSignal, duration_s: float | None = None) -> bo
             app.exec_()
     finally:
         wake.stop()
-        stop.app = None
+        stop.remove_hook(app.quit)
     return stop.event.is_set()
 
 
@@ -126,53 +101,17 @@ def _fmt_mb(n: int) -> str:
     return f"{n / 1e6:.1f} MB"
 
 
-def live_status_line(st: dict) -> str:
-    """One line of a live session's status (terminal)."""
-    rate = st.get("frame_rate_hz", math.nan)
-    lat = st.get("latency_s", math.nan)
-    parts = [
-        f"{rate:7.1f} frames/s" if math.isfinite(rate) else "   -- frames/s",
-        f"lost {st['frames_lost']}",
-        f"bad packets {st['bad_packets']}",
-        f"reconnects {st['reconnects']}",
-        f"latency {lat * 1e3:.0f} ms" if math.isfinite(lat) else "latency -- ms",
-    ]
-    if not st.get("connected", True):
-        parts.append("LINK DOWN")
-    if st.get("recording"):
-        parts.append(f"recording {st['recording']} {_fmt_mb(st['recording_bytes'])} ({st['recording_frames']} frames)")
-    if st.get("recorder_error"):
-        parts.append(f"RECORDING FAILED: {st['recorder_error']}")
-    return " | ".join(parts)
-
-
 # ----------------------------------------------------------------------------- live
 
 
-def _check_new_file(path: str | None, option: str) -> Path | None:
-    if path is None:
-        return None
-    p = Path(path)
-    if p.exists():
-        raise UserError(f"{option} {p}: exists; tapcurve never overwrites a recording")
-    if not p.parent.is_dir():
-        raise UserError(f"{option} {p}: folder {p.parent} does not exist")
-    return p
-
-
-def _live(args, stop: _StopOnSignal) -> int:
+def _live(args, stop: StopSignals) -> int:
     from acquire.rig import load_rig
-    from acquire.sources.live import LiveSession, load_calibration_for, virtual_options_from_args
+    from acquire.session import Session, load_calibration_for
+    from acquire.sources.virtual import virtual_options_from_args
 
     rig = load_rig(args.rig)
     calibration = load_calibration_for(args.calibration, rig)
-    record = _check_new_file(args.record, "--record")
-    if args.label is not None and record is None:
-        raise UserError("--label marks a recording: give --record FILE too")
-    if args.label is not None:
-        from acquire.store.recording import check_label_text
-
-        check_label_text(args.label)
+    record = args.record
     vo = virtual_options_from_args(args, rig) if args.port is None else None
     have_display, why = display_available()
     windowed = have_display and not args.headless
@@ -180,9 +119,10 @@ def _live(args, stop: _StopOnSignal) -> int:
         _say(f"{why}: running headless (acquisition{' and recording' if record else ''}, a status line "
              "every second; Ctrl-C stops)")
     app = make_app() if windowed else None
-    session = LiveSession(
+    session = Session(
         port=args.port, rig=rig, calibration=calibration, record_path=record, record_label=args.label,
-        publish=args.publish, allow_remote=args.publish_allow_remote, virtual_options=vo,
+        publish=args.publish, publish_rate_hz=args.publish_rate_hz, allow_remote=args.publish_allow_remote,
+        virtual_options=vo,
     )
     session.start()
     _say(f"reading {session.source_name} at {session.rate_hz:g} Hz")
@@ -204,21 +144,21 @@ def _live(args, stop: _StopOnSignal) -> int:
             summary = session.stop_recording()
         finally:
             session.stop()
-    return _report_recording(summary)
+    return _report(session, summary)
 
 
-def _report_recording(summary) -> int:
-    if summary is None:
-        return 0
-    labels = summary["labels"]
-    _say(f"{summary['path']}: {summary['frames']} frames, {_fmt_mb(summary['bytes'])}, {len(labels)} labels")
-    if summary["error"]:
-        _say(summary["error"])
-        return 1
-    return 0
+def _report(session, summary) -> int:
+    """Say what was recorded and what failed; 1 if any thread of the session failed."""
+    if summary is not None:
+        labels = summary["labels"]
+        _say(f"{summary['path']}: {summary['frames']} frames, {_fmt_mb(summary['bytes'])}, {len(labels)} labels")
+    errors = session.errors()
+    for err in errors:
+        _say(err)
+    return 1 if errors else 0
 
 
-def _tick(stop: _StopOnSignal, started: float, duration_s: float | None) -> bool:
+def _tick(stop: StopSignals, started: float, duration_s: float | None) -> bool:
     """Wait up to a second (less at the end of ``duration_s``); False when it is time to stop."""
     wait = 1.0
     if duration_s is not None:
@@ -229,19 +169,17 @@ def _tick(stop: _StopOnSignal, started: float, duration_s: float | None) -> bool
     return not stop.event.wait(wait)
 
 
-def _live_headless(session, *, stop: _StopOnSignal, duration_s: float | None) -> None:
+def _live_headless(session, *, stop: StopSignals, duration_s: float | None) -> None:
+    # a failed recording is shown and acquisition goes on, as in the window
     tty = sys.stderr.isatty()
     started = time.monotonic()
     while _tick(stop, started, duration_s):
-        st = session.status()
-        line = live_status_line(st)
+        line = status_line(session.status())
         if tty:
             sys.stderr.write("\r" + line[:200].ljust(120))
         else:
             sys.stderr.write(line + "\n")
         sys.stderr.flush()
-        if st.get("recorder_error"):
-            break
     if tty:
         sys.stderr.write("\n")
 
@@ -249,8 +187,8 @@ def _live_headless(session, *, stop: _StopOnSignal, duration_s: float | None) ->
 # ----------------------------------------------------------------------------- replay
 
 
-def _replay(args, stop: _StopOnSignal) -> int:
-    from acquire.sources.live import ReplaySource
+def _replay(args, stop: StopSignals) -> int:
+    from acquire.sources.replay import ReplaySource
 
     if not 0.1 <= args.speed <= 20.0:
         raise UserError(f"--speed {args.speed:g}: must be 0.1 .. 20")
@@ -281,7 +219,7 @@ def _replay(args, stop: _StopOnSignal) -> int:
     return 0
 
 
-def _replay_headless(src, *, stop: _StopOnSignal, duration_s: float | None) -> None:
+def _replay_headless(src, *, stop: StopSignals, duration_s: float | None) -> None:
     started = time.monotonic()
     while _tick(stop, started, duration_s):
         st = src.status()
@@ -296,10 +234,11 @@ def _replay_headless(src, *, stop: _StopOnSignal, duration_s: float | None) -> N
 # ----------------------------------------------------------------------------- health
 
 
-def _health(args, stop: _StopOnSignal) -> int:
+def _health(args, stop: StopSignals) -> int:
     from acquire.core.health import HealthMonitor, format_health_table
     from acquire.rig import load_rig
-    from acquire.sources.live import LiveSession, virtual_options_from_args
+    from acquire.session import Session
+    from acquire.sources.virtual import virtual_options_from_args
 
     rig = load_rig(args.rig)
     vo = virtual_options_from_args(args, rig) if args.port is None else None
@@ -308,7 +247,7 @@ def _health(args, stop: _StopOnSignal) -> int:
     if not windowed and not args.text:
         _say(f"{why}: printing the health table every second instead (Ctrl-C stops)")
     app = make_app() if windowed else None
-    session = LiveSession(port=args.port, rig=rig, virtual_options=vo)
+    session = Session(port=args.port, rig=rig, virtual_options=vo, view=False)
     session.start()
     try:
         if windowed:
@@ -339,7 +278,7 @@ def _health(args, stop: _StopOnSignal) -> int:
 # ----------------------------------------------------------------------------- export
 
 
-def _export(args, stop: _StopOnSignal) -> int:
+def _export(args, stop: StopSignals) -> int:
     have_display, _ = display_available()
     if not have_display:
         os.environ["QT_QPA_PLATFORM"] = "offscreen"  # render without a screen
@@ -366,5 +305,5 @@ def run_command(args) -> int:
     handler = _COMMANDS.get(args.command)
     if handler is None:
         raise UserError(f"{args.command}: not a display command")
-    with _StopOnSignal() as stop:
+    with StopSignals() as stop:
         return int(handler(args, stop) or 0)

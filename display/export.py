@@ -140,7 +140,7 @@ def export_recording_shape(*, path, out, time_s: float | None = None, calibratio
     UserError
         Not a recording, no calibration at all, the time outside the recording, or an unwritable image.
     """
-    from acquire.sources.live import ReplaySource
+    from acquire.sources.replay import ReplaySource
 
     out_p = _check_out(out)
     src = ReplaySource(path=path, calibration=calibration, window_s=2.0).start()

@@ -1,7 +1,7 @@
 """The plots of the sensor window: shape, per-segment bars, rolling traces, replay timeline.
 
 Every class here lives on the GUI thread and draws arrays it is handed (from
-an :class:`acquire.sources.live.ViewSnapshot`); none reads a port or a file.
+an :class:`acquire.sources.feed.ViewSnapshot`); none reads a port or a file.
 Lengths arrive in metres; pyqtgraph's SI prefixes label the axes in mm.
 """
 from __future__ import annotations

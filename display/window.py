@@ -1,8 +1,8 @@
-"""The sensor window: live from a :class:`acquire.sources.live.LiveSession` or replayed from a
-:class:`acquire.sources.live.ReplaySource`.
+"""The sensor window: live from a :class:`acquire.session.Session` or replayed from a
+:class:`acquire.sources.replay.ReplaySource`.
 
 A ``QTimer`` redraw (60 Hz by default) takes the source's newest
-:class:`~acquire.sources.live.ViewSnapshot` and calls ``setData``; the window never
+:class:`~acquire.sources.feed.ViewSnapshot` and calls ``setData``; the window never
 waits on a source, a port or a file. Everything here runs on the GUI thread.
 """
 from __future__ import annotations

@@ -77,7 +77,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds (headless use)")
     _add_publish(p)
     p.add_argument("--label", help="with --record: mark the whole recording as one labelled interval")
-    from acquire.sources.live import add_virtual_source_arguments
+    from acquire.sources.virtual import add_virtual_source_arguments
 
     add_virtual_source_arguments(p)
 
@@ -145,7 +145,16 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def main(argv: list[str] | None = None) -> int:
+def main(argv: list[str] | None = None, *, window_commands=None) -> int:
+    """Run one ``tapcurve`` command; returns the exit status (0 ok, 1 a failure while running, 2 bad input).
+
+    ``window_commands(args)`` runs the commands that may open a window (live,
+    replay, health, export); the console entry point :func:`display.cli.main`
+    passes it, so this package never imports Qt.
+    """
+    global _WINDOW_COMMANDS
+    if window_commands is not None:
+        _WINDOW_COMMANDS = window_commands
     # a write past a file-size limit must fail as an error, not kill the process
     if hasattr(signal, "SIGXFSZ"):
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
@@ -169,155 +178,59 @@ def main(argv: list[str] | None = None) -> int:
         return 130
 
 
-class _StopFlag:
-    """Set by SIGINT/SIGTERM so the main thread can finish a recording cleanly."""
-
-    def __init__(self):
-        self.event = threading.Event()
-        self._old = {}
-
-    def __enter__(self):
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            self._old[sig] = signal.signal(sig, lambda *_: self.event.set())
-        return self
-
-    def __exit__(self, *exc):
-        for sig, old in self._old.items():
-            signal.signal(sig, old)
-
-
-def _load_calibration(path: str | None, rig):
-    from acquire.core.calibration import load_for_rig
-
-    return load_for_rig(path, rig)
-
-
-def _make_pipeline(rig, calibration, reader):
-    if calibration is None:
-        return None
-    from acquire.core.pipeline import Pipeline
-
-    return Pipeline(rig=rig, calibration=calibration, rate_hz=reader.rate_hz, adc_bits=reader.adc_bits)
-
-
-def _start_publisher(args, *, reader, rig, calibration):
-    if not getattr(args, "publish", None):
-        return None
-    from acquire.serve.publish import ShapePublisher
-
-    pub = ShapePublisher.from_address(
-        args.publish,
-        allow_remote=args.publish_allow_remote,
-        ring=reader.ring,
-        rig=rig,
-        calibration=calibration,
-        rate_hz=reader.rate_hz,
-        adc_bits=reader.adc_bits,
-        counters=reader.all_counters,
-        max_rate_hz=getattr(args, "publish_rate_hz", None),
-    )
-    pub.start()
-    return pub
-
-
 def _cmd_record(args) -> int:
-    from acquire.link.reader import SerialReader
-    from acquire.store.recorder import Recorder
     from acquire.rig import load_rig
+    from acquire.session import Session, load_calibration_for
+    from acquire.session.signals import StopSignals
+    from acquire.session.status import status_line
 
     rig = load_rig(args.rig)
-    out = Path(args.out)
-    if out.exists():
-        raise UserError(f"{out}: exists; tapcurve never overwrites a recording (choose another --out)")
-    if not out.parent.is_dir():
-        raise UserError(f"{out}: folder {out.parent} does not exist")
-    calibration = _load_calibration(args.calibration, rig)
-    if args.label is not None:
-        from acquire.store.recording import check_label_text
-
-        check_label_text(args.label)  # before anything opens
-    if args.publish:
-        from acquire.serve.publish import check_address
-
-        check_address(args.publish, allow_remote=args.publish_allow_remote)  # before anything opens
-    reader = SerialReader(port=args.port)
-    reader.start()
-    publisher = None
-    recorder = None
-    try:
-        rig.check_device(channels=reader.n_channels, where=f"device on {args.port}")
-        pipeline = _make_pipeline(rig, calibration, reader)
-        # bound before the file exists: a refused address leaves no recording behind
-        publisher = _start_publisher(args, reader=reader, rig=rig, calibration=calibration)
-        max_frames = None if args.duration is None else max(1, int(round(args.duration * reader.rate_hz)))
-        recorder = Recorder(
-            path=out,
-            ring=reader.ring,
-            rig_toml=rig.text,
-            device_hello=json.dumps(reader.hello),
-            channel_names=rig.channels,
-            events=reader.events,
-            counters=reader.all_counters,
-            pipeline=pipeline,
-            calibration_json=None if calibration is None else calibration.to_json(),
-            label=args.label,
-            max_frames=max_frames,
-            n_segments=rig.n_segments,
-        )
-        recorder.start()
-        status = _StatusLine(enabled=not args.quiet and sys.stderr.isatty())
-        started = time.monotonic()
-        # a stalled device must not keep a --duration run going for ever
-        host_limit = None if args.duration is None else args.duration * 1.5 + 10.0
-        with _StopFlag() as stop:
-            while not stop.event.wait(0.2):
-                if recorder.reached_max.is_set() or recorder.error or not recorder.running:
-                    break
-                if host_limit is not None and time.monotonic() - started > host_limit:
-                    print(f"tapcurve: {args.port}: device sent too few frames for --duration; stopping", file=sys.stderr)
-                    break
-                status.show(reader, recorder)
-        status.clear()
-    finally:
-        if publisher is not None:
-            publisher.stop()
-        reader.stop()
-        if recorder is not None:
-            recorder.stop()
-    c = reader.all_counters()
+    calibration = load_calibration_for(args.calibration, rig)
+    session = Session(
+        port=args.port, rig=rig, calibration=calibration, view=False,
+        record_path=args.out, record_label=args.label, record_option="--out", record_duration_s=args.duration,
+        publish=args.publish, publish_rate_hz=args.publish_rate_hz, allow_remote=args.publish_allow_remote,
+    )
+    with StopSignals() as stop:
+        session.start()
+        try:
+            _wait_recording(session, stop=stop, duration_s=args.duration, quiet=args.quiet, port=args.port,
+                            status_line=status_line)
+        finally:
+            summary = session.stop_recording()
+            session.stop()
+    c = session.reader.all_counters()
     print(
-        f"{out}: {recorder.frames_written} frames, {c['frames_lost']} lost on the link, "
+        f"{summary['path']}: {summary['frames']} frames, {c['frames_lost']} lost on the link, "
         f"{sum(v for k, v in c.items() if k.startswith('drop_'))} bad packets, {c['reconnects']} reconnects",
         file=sys.stderr,
     )
-    if recorder.error:
-        print(f"tapcurve: {recorder.error}", file=sys.stderr)
-        return 1
-    return 0
+    errors = session.errors()
+    for err in errors:
+        print(f"tapcurve: {err}", file=sys.stderr)
+    return 1 if errors else 0
 
 
-class _StatusLine:
-    def __init__(self, *, enabled: bool):
-        self.enabled = enabled
-        self._last = 0.0
-
-    def show(self, reader, recorder) -> None:
-        now = time.monotonic()
-        if not self.enabled or now - self._last < 1.0:
-            return
-        self._last = now
-        c = reader.all_counters()
-        bad = sum(v for k, v in c.items() if k.startswith("drop_"))
-        link = "up" if reader.connected else "DOWN"
-        sys.stderr.write(
-            f"\r{recorder.frames_written} frames  lost {c['frames_lost']}  bad {bad}  "
-            f"reconnects {c['reconnects']}  link {link}  {recorder.file_bytes / 1e6:.1f} MB   "
-        )
-        sys.stderr.flush()
-
-    def clear(self) -> None:
-        if self.enabled:
-            sys.stderr.write("\n")
+def _wait_recording(session, *, stop, duration_s, quiet, port, status_line) -> None:
+    """Main thread: wait for the frame count, a stop signal or a failure, showing a status line."""
+    recorder = session.recorder
+    tty = not quiet and sys.stderr.isatty()
+    started = time.monotonic()
+    # a stalled device must not keep a --duration run going for ever
+    host_limit = None if duration_s is None else duration_s * 1.5 + 10.0
+    last_line = 0.0
+    while not stop.event.wait(0.2):
+        if recorder.reached_max.is_set() or session.errors() or not recorder.running:
+            break
+        if host_limit is not None and time.monotonic() - started > host_limit:
+            print(f"tapcurve: {port}: device sent too few frames for --duration; stopping", file=sys.stderr)
+            break
+        if tty and time.monotonic() - last_line >= 1.0:
+            last_line = time.monotonic()
+            sys.stderr.write("\r" + status_line(session.status())[:200].ljust(100))
+            sys.stderr.flush()
+    if tty:
+        sys.stderr.write("\n")
 
 
 def _cmd_inspect(args) -> int:
@@ -338,7 +251,7 @@ def _cmd_virtual_device(args) -> int:
 
 
 def _cmd_calibrate(args) -> int:
-    from acquire.commands.offline import calibrate_command
+    from acquire.commands.calibrate import calibrate_command
 
     return calibrate_command(
         files=args.files, rig_path=args.rig, out_path=args.out, reference_path=args.reference, force=args.force
@@ -346,13 +259,13 @@ def _cmd_calibrate(args) -> int:
 
 
 def _cmd_tare(args) -> int:
-    from acquire.commands.offline import tare_command
+    from acquire.commands.tare import tare_command
 
     return tare_command(file=args.file, calibration_path=args.calibration, out_path=args.out)
 
 
 def _cmd_process(args) -> int:
-    from acquire.commands.offline import process_command
+    from acquire.commands.process import process_command
 
     return process_command(
         file=args.file,
@@ -363,10 +276,14 @@ def _cmd_process(args) -> int:
     )
 
 
-def _cmd_gui(args) -> int:
-    from display.app import run_command
+def _cmd_window(args) -> int:
+    if _WINDOW_COMMANDS is None:
+        raise UserError(f"{args.command}: the window commands come with the display package (run tapcurve)")
+    return int(_WINDOW_COMMANDS(args) or 0)
 
-    return run_command(args)
+
+#: set by the console entry point (display.cli): runs live, replay, health and export; acquire never imports Qt
+_WINDOW_COMMANDS = None
 
 
 _HANDLERS = {
@@ -376,10 +293,10 @@ _HANDLERS = {
     "calibrate": _cmd_calibrate,
     "tare": _cmd_tare,
     "process": _cmd_process,
-    "live": _cmd_gui,
-    "replay": _cmd_gui,
-    "health": _cmd_gui,
-    "export": _cmd_gui,
+    "live": _cmd_window,
+    "replay": _cmd_window,
+    "health": _cmd_window,
+    "export": _cmd_window,
 }
 
 if __name__ == "__main__":  # pragma: no cover

@@ -3,18 +3,9 @@
 Reference labels
 ----------------
 A labelled interval of a recording whose sensor was held at a known shape is a
-*hold*. :func:`parse_label` reads the curvature a label states:
-
-- ``flat`` -> 0
-- ``radius=25mm`` -> 1 / 0.025 m = 40 1/m; units ``mm``, ``cm`` or ``m``; a
-  negative radius bends the other way.
-- ``curvature=40/m`` -> 40 1/m; units ``/m`` (or ``1/m``), ``/cm``, ``/mm``;
-  negative allowed.
-
-Case and spaces around ``=`` do not matter. Any other text is not a reference
-(``None``), except text that starts like one (``radius=``, ``curvature=``) but
-cannot be read, which raises :class:`LabelError` rather than being dropped
-silently.
+*hold*. The label grammar (``flat``, ``radius=25mm``, ``curvature=40/m``) and
+its bounds are :mod:`acquire.core.labels`; :func:`parse_label` and
+:class:`LabelError` are re-exported here.
 
 Reference table
 ---------------
@@ -68,7 +59,6 @@ import hashlib
 import importlib.metadata
 import json
 import math
-import re
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -76,8 +66,9 @@ from typing import Sequence
 
 import numpy as np
 
+from acquire.core.labels import MAX_CURVATURE_PER_M, LabelError, check_curvature, parse_label
 from acquire.errors import UserError
-from acquire.rig import Rig
+from acquire.rig import BOUNDS, MAX_CHANNELS, Rig
 
 try:  # Python 3.11+
     import tomllib
@@ -97,6 +88,8 @@ __all__ = [
     "Calibration",
     "fit_calibration",
     "load_for_rig",
+    "check_calibration_dict",
+    "check_distinct_recordings",
     "software_version",
     "file_sha256",
     "MODEL_NAME",
@@ -113,72 +106,33 @@ class CalibrationError(UserError):
     """A calibration cannot be fitted, read or used with this rig."""
 
 
-class LabelError(UserError):
-    """A label looks like a reference but cannot be read."""
-
-
 # ----------------------------------------------------------------------------- labels
-
-_NUM = r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"
-_RADIUS = re.compile(rf"^radius\s*=\s*({_NUM})\s*(mm|cm|m)$", re.IGNORECASE)
-_CURV = re.compile(rf"^curvature\s*=\s*({_NUM})\s*(?:1)?/\s*(mm|cm|m)$", re.IGNORECASE)
-_REF_START = re.compile(r"^(radius|curvature)\s*=", re.IGNORECASE)
-_TO_M = {"mm": 1e-3, "cm": 1e-2, "m": 1.0}
-
-
-def parse_label(text: str) -> float | None:
-    """Uniform reference curvature a label states, 1/m, or None if it states none.
-
-    Raises
-    ------
-    LabelError
-        The label starts with ``radius=`` or ``curvature=`` but is not
-        readable, or states a zero radius.
-    """
-    t = text.strip()
-    if t.lower() == "flat":
-        return 0.0
-    m = _RADIUS.match(t)
-    if m:
-        radius_m = float(m.group(1)) * _TO_M[m.group(2).lower()]
-        if radius_m == 0 or not math.isfinite(radius_m):
-            raise LabelError(f"label {text!r}: radius must be a non-zero number")
-        return 1.0 / radius_m
-    m = _CURV.match(t)
-    if m:
-        value = float(m.group(1)) / _TO_M[m.group(2).lower()]
-        if not math.isfinite(value):
-            raise LabelError(f"label {text!r}: curvature must be a finite number")
-        return value
-    if _REF_START.match(t):
-        raise LabelError(
-            f"label {text!r}: cannot read it as a reference "
-            f"(write e.g. radius=25mm, radius=-2.5cm, curvature=40/m or flat)"
-        )
-    return None
+# The label grammar lives in acquire.core.labels; parse_label and LabelError are
+# re-exported here for code that imports them from this module.
 
 
 def _entry(value, where: str) -> float:
-    if isinstance(value, bool):
+    if isinstance(value, bool) or not isinstance(value, (int, float, str)):
         raise CalibrationError(f"{where}: {value!r} is not a curvature")
-    if isinstance(value, (int, float)):
-        return float(value)
-    if isinstance(value, str):
-        s = value.strip()
-        if s.lower() in ("nan", ""):
-            return math.nan
+    text = value.strip() if isinstance(value, str) else None
+    if text is not None and text.lower() in ("nan", ""):
+        return math.nan
+    try:
+        k = float(value)
+    except ValueError:
         try:
-            return float(s)
-        except ValueError:
-            pass
-        try:
-            k = parse_label(s)
+            k = parse_label(text)
         except LabelError as exc:
             raise CalibrationError(f"{where}: {exc}") from None
         if k is None:
             raise CalibrationError(f"{where}: {value!r} is neither a number (1/m) nor a reference label")
         return k
-    raise CalibrationError(f"{where}: {value!r} is not a curvature")
+    if math.isnan(k):
+        return k
+    try:
+        return check_curvature(k, what=where)
+    except LabelError as exc:
+        raise CalibrationError(str(exc)) from None
 
 
 def load_reference_table(path: str | Path) -> dict[str, list[float]]:
@@ -403,6 +357,109 @@ class FitReport:
         return "\n".join(lines)
 
 
+# ----------------------------------------------------------------------------- file checks
+
+#: what a calibration file must hold: (key, kind, low, high). ``[]`` stands for
+#: every element of a list; kind ``list`` bounds a list's length, ``num`` a
+#: finite number, ``int`` a whole number; a trailing ``?`` makes the key
+#: optional. Curvature bounds are the label bounds; rig bounds are the rig
+#: file's; the coefficient bound is far beyond any real strip (a relative
+#: change of 1 meaning 1e6 1/m): common practice, no source.
+_FILE_SCHEMA = (
+    ("r0_ohm", "list", 1, MAX_CHANNELS - 1),
+    ("r0_ohm[]", "num", *BOUNDS["sensor.segment_ohm_range"][:2]),
+    ("model.segments", "list", 1, MAX_CHANNELS - 1),
+    ("model.segments[].positive", "list", 1, 8),
+    ("model.segments[].negative", "list", 1, 8),
+    ("model.segments[].positive[]", "num", -1e6, 1e6),
+    ("model.segments[].negative[]", "num", -1e6, 1e6),
+    ("model.segments[].x_min", "num", -1.0, 0.0),
+    ("model.segments[].x_max", "num", 0.0, 1e3),
+    ("model.segments[].curvature_min_per_m", "num", -MAX_CURVATURE_PER_M, 0.0),
+    ("model.segments[].curvature_max_per_m", "num", 0.0, MAX_CURVATURE_PER_M),
+    ("rig.r_ref_ohm?", "num", *BOUNDS["readout.r_ref_ohm"][:2]),
+    ("rig.n_segments?", "int", 1, MAX_CHANNELS - 1),
+    ("rig.segment_lengths_mm[]?", "num", *BOUNDS["sensor.segment_lengths_mm"][:2]),
+    ("tares[].r0_ohm_before[]?", "num", *BOUNDS["sensor.segment_ohm_range"][:2]),
+)
+_MISSING = object()
+
+
+def _walk(node, parts: list[str], name: str, source: str):
+    """(key name, value) of every element ``parts`` reaches; _MISSING where a key is absent."""
+    if not parts:
+        yield name, node
+        return
+    head, rest = parts[0], parts[1:]
+    if node is _MISSING:
+        yield name, _MISSING
+    elif head == "[]":
+        if not isinstance(node, list):
+            raise CalibrationError(f"{source}: {name} must be a list")
+        for i, item in enumerate(node):
+            yield from _walk(item, rest, f"{name}[{i}]", source)
+    elif not isinstance(node, dict):
+        raise CalibrationError(f"{source}: {name} must be an object")
+    else:
+        yield from _walk(node.get(head, _MISSING), rest, f"{name}.{head}" if name else head, source)
+
+
+def _check_value(name: str, value, kind: str, low, high, source: str) -> None:
+    if kind == "list":
+        if not isinstance(value, list) or not low <= len(value) <= high:
+            raise CalibrationError(f"{source}: {name} must be a list of {low} .. {high} values")
+        return
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or (kind == "int" and not isinstance(value, int)):
+        raise CalibrationError(f"{source}: {name} must be a {'whole number' if kind == 'int' else 'number'}, got {value!r}")
+    if not math.isfinite(value):
+        raise CalibrationError(f"{source}: {name} must be a finite number, got {value!r}")
+    if not low <= value <= high:
+        raise CalibrationError(f"{source}: {name} = {value!r} is outside {low:g} .. {high:g}")
+
+
+def check_calibration_dict(d: dict, *, source: str) -> None:
+    """Check a parsed calibration file against the module's schema table.
+
+    Raises
+    ------
+    CalibrationError
+        One line naming ``source`` and the key at fault: missing, of the
+        wrong type, not finite (NaN, Infinity) or outside its bound.
+    """
+    for key, kind, low, high in _FILE_SCHEMA:
+        optional = key.endswith("?")
+        parts = key.rstrip("?").replace("[]", ".[]").split(".")
+        for name, value in _walk(d, parts, "", source):
+            if value is _MISSING:
+                if optional:
+                    continue
+                raise CalibrationError(f"{source}: missing key {name}")
+            _check_value(name, value, kind, low, high, source)
+
+
+def check_distinct_recordings(recordings: Sequence[dict]) -> None:
+    """Refuse the same recording given twice (it would count its holds twice).
+
+    Parameters
+    ----------
+    recordings : sequence of dict
+        ``path`` and ``sha256`` of each input, in the order given.
+
+    Raises
+    ------
+    CalibrationError
+        Names the second file and the first one with the same content.
+    """
+    seen: dict[str, str] = {}
+    for r in recordings:
+        if r["sha256"] in seen:
+            raise CalibrationError(
+                f"{r['path']}: the same recording as {seen[r['sha256']]} (identical content); "
+                f"given twice, its holds would count twice"
+            )
+        seen[r["sha256"]] = str(r["path"])
+
+
 # ----------------------------------------------------------------------------- calibration
 
 def software_version() -> str:
@@ -601,12 +658,12 @@ class Calibration:
         Returns
         -------
         list of str
-            Notes that do not stop use (e.g. the rig file's text differs).
+            Notes that do not stop use (the rig file's text differs).
 
         Raises
         ------
         CalibrationError
-            Segment count or readout kind disagree.
+            Segment count, segment lengths, readout kind or r_ref_ohm disagree.
         """
         if rig.n_segments != self.n_segments:
             raise CalibrationError(
@@ -624,10 +681,18 @@ class Calibration:
                 f"{self.source}: calibration was made with r_ref_ohm = {float(r_ref):g}, "
                 f"rig {rig.source} has {rig.r_ref_ohm:g}"
             )
-        notes = []
         lengths = self.rig.get("segment_lengths_mm")
-        if lengths is not None and not np.allclose(np.asarray(lengths) * 1e-3, rig.segment_lengths_m, atol=1e-7):
-            notes.append(f"{self.source}: made for segment lengths {lengths} mm, rig {rig.source} differs")
+        if lengths is not None and (
+            len(lengths) != rig.n_segments
+            or not np.allclose(np.asarray(lengths, dtype=np.float64) * 1e-3, rig.segment_lengths_m, rtol=0, atol=1e-7)
+        ):
+            # curvature is heading change over a segment's length: another length, another law
+            rig_mm = [round(float(v) * 1e3, 6) for v in rig.segment_lengths_m]
+            raise CalibrationError(
+                f"{self.source}: calibration was made for segment lengths {lengths} mm, "
+                f"rig {rig.source} has {rig_mm} mm"
+            )
+        notes = []
         if self.rig.get("sha256") and self.rig["sha256"] != rig.sha256:
             notes.append(f"{self.source}: made with a different rig file ({self.rig.get('source', '?')}) than {rig.source}")
         return notes
@@ -686,6 +751,7 @@ class Calibration:
             raise CalibrationError(f"{source}: not a tapcurve calibration (key format is not {FORMAT_NAME!r})")
         if d.get("format_version") != FORMAT_VERSION:
             raise CalibrationError(f"{source}: format_version {d.get('format_version')!r} is not supported")
+        check_calibration_dict(d, source=source)
         try:
             model = d["model"]
             if model.get("name") != MODEL_NAME:
@@ -974,8 +1040,9 @@ def fit_calibration(
 def load_for_rig(path, rig: Rig, *, warn=None):
     """Load a calibration file and check it against ``rig``; None for None.
 
-    Notes that do not stop use (a different rig file text, other segment
-    lengths) go to ``warn`` (default: stderr), one line each.
+    Notes that do not stop use (a different rig file text) go to ``warn``
+    (default: stderr), one line each; other segment lengths, segment count,
+    readout kind or r_ref_ohm stop it.
 
     Raises
     ------

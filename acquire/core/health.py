@@ -592,7 +592,7 @@ class HealthMonitor:
     Parameters
     ----------
     cursor : RingCursor
-        The monitor's own read position (e.g. ``LiveSession.cursor()``).
+        The monitor's own read position (e.g. ``Session.cursor()``).
     rig : Rig
     adc_bits : int
     rate_hz : float

@@ -32,7 +32,8 @@ from acquire.core.readout import ChainCheck, make_readout
 from acquire.core.reconstruct import Reconstructor
 from acquire.rig import Rig
 
-__all__ = ["Processed", "Pipeline", "process_arrays", "iter_processed"]
+__all__ = [
+    "tare_calibration","Processed", "Pipeline", "process_arrays", "iter_processed"]
 
 
 @dataclass
@@ -147,6 +148,10 @@ class Pipeline:
             self.set_calibration(calibration)
 
     @property
+    def n_segments(self) -> int:
+        return self.rig.n_segments
+
+    @property
     def s_m(self) -> np.ndarray:
         """(P,) arc length of each shape point, m (read-only)."""
         return self.reconstructor.s_m
@@ -187,14 +192,7 @@ class Pipeline:
         UserError
             No calibration loaded, or a segment has no valid frame.
         """
-        cal = self.calibration
-        if cal is None:
-            raise UserError("cannot tare: no calibration loaded")
-        r = np.asarray(resistance_ohm, dtype=np.float64)
-        if r.ndim != 2 or r.shape[1] != self.rig.n_segments or r.shape[0] == 0:
-            raise UserError(f"cannot tare: need frames of {self.rig.n_segments} segments, got shape {r.shape}")
-        med = _nanmedian_last_axis(r.T)  # NaN for a segment without a valid frame; tared() refuses it
-        tared = cal.tared(med)
+        tared = tare_calibration(self.calibration, resistance_ohm)
         self.set_calibration(tared)
         return tared
 
@@ -204,16 +202,34 @@ class Pipeline:
             self.filters.reset()
 
     def process(self, block: FrameBlock) -> Processed:
-        """Process the next block of the stream (processing thread)."""
-        return self.process_codes(block.codes)
+        """Process the next block of the stream (processing thread).
 
-    def process_codes(self, codes: np.ndarray) -> Processed:
-        """As :meth:`process`, from codes of shape (N, C) alone."""
+        The filters restart at the block's :attr:`~acquire.link.frames.FrameBlock.restarts`
+        (a reconnect or a device reboot): this is the one place that reacts to
+        them, so every consumer of a stream, live or offline, agrees.
+        """
+        return self.process_codes(block.codes, restarts=block.restarts)
+
+    def process_codes(self, codes: np.ndarray, *, restarts=()) -> Processed:
+        """As :meth:`process`, from codes of shape (N, C) and restart offsets in them."""
         with self._run_lock:
             cal = self.calibration  # one calibration per block
             resistance, check, to_filter = self._read(codes)
-            filtered = self.filters.process(to_filter)
+            filtered = self._filter(to_filter, restarts)
             return self._finish(resistance, filtered, check, cal)
+
+    def _filter(self, x: np.ndarray, restarts) -> np.ndarray:
+        cuts = sorted({int(r) for r in restarts if 0 <= int(r) < x.shape[0]})
+        if not cuts:
+            return self.filters.process(x)
+        parts, start = [], 0
+        for cut in cuts:
+            if cut > start:
+                parts.append(self.filters.process(x[start:cut]))
+            self.filters.reset()
+            start = cut
+        parts.append(self.filters.process(x[start:]))
+        return np.concatenate(parts)
 
     def _read(self, codes: np.ndarray):
         codes = np.asarray(codes)
@@ -241,6 +257,31 @@ class Pipeline:
         )
 
 
+def tare_calibration(calibration: Calibration | None, resistance_ohm: np.ndarray) -> Calibration:
+    """The one definition of tare: ``calibration`` re-zeroed at the median of frames held flat (any thread).
+
+    Parameters
+    ----------
+    calibration : Calibration or None
+    resistance_ohm : array_like, shape (n, S)
+        Filtered resistances of frames with the sensor flat, ohm (the last
+        second live; the whole flat recording offline).
+
+    Raises
+    ------
+    UserError
+        No calibration, no frames, or a segment without a valid frame.
+    """
+    if calibration is None:
+        raise UserError("cannot tare: no calibration loaded")
+    r = np.asarray(resistance_ohm, dtype=np.float64)
+    n_seg = calibration.n_segments
+    if r.ndim != 2 or r.shape[1] != n_seg or r.shape[0] == 0:
+        raise UserError(f"cannot tare: need frames of {n_seg} segments, got shape {r.shape}")
+    med = _nanmedian_last_axis(r.T)  # NaN for a segment without a valid frame; tared() refuses it
+    return calibration.tared(med)
+
+
 def iter_processed(
     codes,
     *,
@@ -253,6 +294,7 @@ def iter_processed(
     zero_phase: bool = False,
     chunk_frames: int = 65536,
     mask_faults: bool = True,
+    restarts=(),
 ) -> Iterator[tuple[int, Processed]]:
     """Process a whole recording chunk by chunk (offline; any thread).
 
@@ -264,6 +306,9 @@ def iter_processed(
         Filter with :func:`acquire.core.filters.filtfilt_zero_phase` (no delay;
         needs all resistances in memory, 8*S bytes per frame) instead of the
         causal live filters.
+    restarts : sequence of int
+        Frame indices where the stream starts afresh (a recording's reconnect
+        and reboot events): the filters restart there, as they did live.
     Other parameters as for :class:`Pipeline`.
 
     Yields
@@ -278,8 +323,11 @@ def iter_processed(
     n = int(codes.shape[0])
     step = max(1, int(chunk_frames))
     if not zero_phase:
+        marks = np.asarray(sorted(set(int(r) for r in restarts)), dtype=np.int64)
         for start in range(0, n, step):
-            yield start, pipe.process_codes(np.asarray(codes[start:start + step]))
+            chunk = np.asarray(codes[start:start + step])
+            inside = marks[(marks >= start) & (marks < start + chunk.shape[0])] - start
+            yield start, pipe.process_codes(chunk, restarts=inside)
         return
     # zero phase: read everything to resistance first, filter forwards and backwards, then finish by chunk
     reads = [pipe._read(np.asarray(codes[start:start + step])) for start in range(0, n, step)]

@@ -34,11 +34,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 
 from acquire.rig import Rig
 
-__all__ = ["Reconstructor", "body_outline", "METHODS", "TIP_MODES"]
+__all__ = ["Reconstructor", "body_outline", "not_a_knot_basis", "METHODS", "TIP_MODES"]
 
 METHODS = ("smooth", "arcs")
 TIP_MODES = ("rigid", "continue")
@@ -147,9 +146,9 @@ class Reconstructor:
 
     # -- linear maps from segment means to theta and kappa
 
-    def _spline(self) -> CubicSpline:
-        # theta(s) = B(s) @ F with F the exact tap angles; basis by feeding the identity
-        return CubicSpline(self.knots_m, np.eye(self.n_segments + 1), axis=0, bc_type="not-a-knot")
+    def _spline(self, s: np.ndarray, *, derivative: int = 0) -> np.ndarray:
+        # theta(s) = B(s) @ F with F the exact tap angles: the (M, S+1) basis B (or its slope)
+        return not_a_knot_basis(self.knots_m, s, derivative=derivative)
 
     def _cumulative(self) -> np.ndarray:
         # F_j = sum_{k<j} m_k L_k as a matrix (S+1, S)
@@ -164,7 +163,7 @@ class Reconstructor:
         if self.method == "arcs":
             t = np.clip(inside[:, None] - self.knots_m[None, :-1], 0.0, self.segment_lengths_m[None, :])
         else:
-            t = self._spline()(inside) @ self._cumulative()
+            t = self._spline(inside) @ self._cumulative()
             # taps exactly (the spline reproduces them up to rounding)
             at_end = s >= L
             t[at_end] = self.segment_lengths_m[None, :]
@@ -195,7 +194,7 @@ class Reconstructor:
             k_mat = np.zeros((s.size, self.n_segments))
             k_mat[np.arange(s.size), seg] = 1.0
         else:
-            k_mat = self._spline()(inside, 1) @ self._cumulative()
+            k_mat = self._spline(inside, derivative=1) @ self._cumulative()
         beyond = s > L
         k_mat[beyond] = 0.0
         if self.tip_mode == "continue":
@@ -268,6 +267,81 @@ class Reconstructor:
             dy = chord * np.sin(mid)
         np.cumsum(dx, axis=1, out=out[:, 1:, 0])
         np.cumsum(dy, axis=1, out=out[:, 1:, 1])
+
+
+def _knot_slopes(knots: np.ndarray) -> np.ndarray:
+    """(n, n) matrix mapping knot values to knot slopes of the "not-a-knot" cubic spline.
+
+    Unknowns: the slopes m_i of a C1 piecewise cubic (Hermite form). Rows:
+    C2 at every interior knot, and a continuous third derivative across the
+    second and the last-but-one knot (the not-a-knot ends). With 3 knots that
+    is the parabola through them, with 2 the straight line (C. de Boor, "A
+    Practical Guide to Splines", ch. IV, end conditions).
+    """
+    n = knots.size
+    h = np.diff(knots)
+    eye = np.eye(n)
+    delta = (eye[1:] - eye[:-1]) / h[:, None]  # (n-1, n): secant slope of interval i, linear in the values
+    if n == 2:  # a line
+        return np.stack([delta[0], delta[0]])
+    a = np.zeros((n, n))
+    rhs = np.zeros((n, n))
+
+    def third(i: int):
+        # f''' on interval i is 6 (m_i + m_(i+1) - 2 delta_i) / h_i**2: (row over slopes, row over values)
+        row = np.zeros(n)
+        row[i] = row[i + 1] = 1.0
+        return row / h[i] ** 2, 2.0 * delta[i] / h[i] ** 2
+
+    for i in range(1, n - 1):  # C2 at knot i
+        a[i, i - 1], a[i, i], a[i, i + 1] = h[i], 2.0 * (h[i - 1] + h[i]), h[i - 1]
+        rhs[i] = 3.0 * (h[i] * delta[i - 1] + h[i - 1] * delta[i])
+    if n == 3:  # a parabola: no third derivative on either interval
+        (a[0], rhs[0]), (a[2], rhs[2]) = third(0), third(1)
+    else:
+        (r0, v0), (r1, v1) = third(0), third(1)
+        a[0], rhs[0] = r0 - r1, v0 - v1
+        (r0, v0), (r1, v1) = third(n - 3), third(n - 2)
+        a[n - 1], rhs[n - 1] = r0 - r1, v0 - v1
+    return np.linalg.solve(a, rhs)
+
+
+def not_a_knot_basis(knots_m, s_m, *, derivative: int = 0) -> np.ndarray:
+    """Basis of the "not-a-knot" cubic spline through the knots, evaluated at ``s_m``.
+
+    Row r, column j: the value (``derivative=1``: the slope) at ``s_m[r]`` of
+    the spline through 1 at knot j and 0 at the others, so the spline through
+    values F is ``basis @ F``. The spline of
+    ``scipy.interpolate.CubicSpline(knots, F, bc_type="not-a-knot")`` (the
+    tests compare them); points outside the knots use the end pieces.
+
+    Parameters
+    ----------
+    knots_m : array_like, shape (n,)
+        Increasing, n >= 2, m.
+    s_m : array_like, shape (M,)
+        m.
+    derivative : {0, 1}
+
+    Returns
+    -------
+    ndarray of float64, shape (M, n)
+        New; slopes in 1/m.
+    """
+    knots = np.asarray(knots_m, dtype=np.float64)
+    s = np.asarray(s_m, dtype=np.float64).reshape(-1)
+    slopes = _knot_slopes(knots)
+    i = np.clip(np.searchsorted(knots, s, side="right") - 1, 0, knots.size - 2)
+    h = (knots[i + 1] - knots[i])[:, None]
+    t = (s - knots[i])[:, None] / h
+    eye = np.eye(knots.size)
+    y0, y1, m0, m1 = eye[i], eye[i + 1], slopes[i], slopes[i + 1]
+    if derivative == 0:  # cubic Hermite form
+        return ((1 + 2 * t) * (1 - t) ** 2 * y0 + t * (1 - t) ** 2 * h * m0
+                + t * t * (3 - 2 * t) * y1 - t * t * (1 - t) * h * m1)
+    if derivative == 1:
+        return 6 * t * (t - 1) / h * (y0 - y1) + (1 - t) * (1 - 3 * t) * m0 + t * (3 * t - 2) * m1
+    raise ValueError("derivative must be 0 or 1")
 
 
 def body_outline(xy: np.ndarray, *, thickness_above_m: float, thickness_below_m: float) -> np.ndarray:

@@ -10,11 +10,14 @@ from __future__ import annotations
 
 import threading
 from collections import deque
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["FrameBlock", "FrameRing", "RingCursor", "EventLog", "Event"]
+__all__ = ["FrameBlock", "FrameRing", "RingCursor", "EventLog", "Event", "RESTART_EVENT_KINDS"]
+
+#: link events after which the stream starts afresh (the reader marks the ring there)
+RESTART_EVENT_KINDS = ("reconnected", "reboot")
 
 
 @dataclass
@@ -33,6 +36,10 @@ class FrameBlock:
         Host receive time (monotonic clock), s since the session's epoch.
     status : ndarray of uint8, shape (N,)
         Status byte of each frame.
+    restarts : ndarray of int64, shape (K,)
+        Offsets in this block of frames where the stream starts afresh (after
+        a reconnect or a device reboot): every consumer's filters restart
+        there, so live, recorded and offline results agree.
 
     Arrays handed out by a ring are copies owned by the receiver.
     """
@@ -42,6 +49,7 @@ class FrameBlock:
     t_device_s: np.ndarray
     t_host_s: np.ndarray
     status: np.ndarray
+    restarts: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
     def __len__(self) -> int:
         return int(self.seq.shape[0])
@@ -66,21 +74,26 @@ class FrameBlock:
             return cls.empty(n_channels)
         if len(blocks) == 1:
             return blocks[0]
+        offsets = np.cumsum([0] + [len(b) for b in blocks[:-1]])
         return cls(
             codes=np.concatenate([b.codes for b in blocks]),
             seq=np.concatenate([b.seq for b in blocks]),
             t_device_s=np.concatenate([b.t_device_s for b in blocks]),
             t_host_s=np.concatenate([b.t_host_s for b in blocks]),
             status=np.concatenate([b.status for b in blocks]),
+            restarts=np.concatenate([b.restarts + o for b, o in zip(blocks, offsets)]).astype(np.int64),
         )
 
     def slice(self, start: int, stop: int) -> "FrameBlock":
+        start, stop, _ = slice(start, stop).indices(len(self))
+        r = self.restarts
         return FrameBlock(
             self.codes[start:stop],
             self.seq[start:stop],
             self.t_device_s[start:stop],
             self.t_host_s[start:stop],
             self.status[start:stop],
+            restarts=r[(r >= start) & (r < stop)] - start,
         )
 
 
@@ -106,6 +119,7 @@ class FrameRing:
         self._t_host = np.zeros(self.capacity, dtype=np.float64)
         self._status = np.zeros(self.capacity, dtype=np.uint8)
         self._written = 0  # frames ever written; position of the next frame
+        self._restarts: deque[int] = deque(maxlen=1024)  # positions where the stream starts afresh
         self._cond = threading.Condition()
         self._closed = False
 
@@ -147,6 +161,16 @@ class FrameRing:
             self._written += skipped + n
             self._cond.notify_all()
 
+    def mark_restart(self) -> None:
+        """Mark the next frame as a fresh start of the stream (writer thread only).
+
+        Called by the reader after a reconnect or a device reboot; readers see
+        it as :attr:`FrameBlock.restarts`.
+        """
+        with self._cond:
+            if not self._restarts or self._restarts[-1] != self._written:
+                self._restarts.append(self._written)
+
     def close(self) -> None:
         """Tell waiting readers that no more frames will come."""
         with self._cond:
@@ -171,12 +195,14 @@ class FrameRing:
         n = stop - start
         i0 = start % self.capacity
         idx = (i0 + np.arange(n)) % self.capacity if i0 + n > self.capacity else slice(i0, i0 + n)
+        marks = [p - start for p in self._restarts if start <= p < stop]
         return FrameBlock(
             codes=self._codes[idx].copy(),
             seq=self._seq[idx].copy(),
             t_device_s=self._t_dev[idx].copy(),
             t_host_s=self._t_host[idx].copy(),
             status=self._status[idx].copy(),
+            restarts=np.array(marks, dtype=np.int64),
         )
 
     def t_host_at(self, position: int) -> float | None:

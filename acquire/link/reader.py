@@ -44,6 +44,7 @@ from firmware_protocol import (
 
 from acquire.errors import UserError
 from acquire.link.frames import Event, EventLog, FrameBlock, FrameRing
+from acquire.session.worker import Worker
 
 __all__ = ["SerialReader", "PortError", "open_port"]
 
@@ -58,13 +59,26 @@ READ_WINDOW_S = 0.004
 _READ_SIZE = 1 << 16
 
 
-def open_port(port: str, *, timeout_s: float = READ_WINDOW_S) -> serial.Serial:
-    """Open ``port`` for exclusive use, turning failures into one-line :class:`PortError`."""
+def _open(port: str, timeout_s: float) -> serial.SerialBase:
+    # pyserial's URL forms (socket://host:port, rfc2217://host:port, ...) reach boards behind a
+    # serial-to-network bridge; a plain path is a local port, opened for this program alone
+    if "://" in port:
+        return serial.serial_for_url(port, baudrate=921600, timeout=timeout_s)
+    return serial.Serial(port, baudrate=921600, timeout=timeout_s, exclusive=True)
+
+
+def open_port(port: str, *, timeout_s: float = READ_WINDOW_S) -> serial.SerialBase:
+    """Open ``port`` (a device path or a pyserial URL) for exclusive use.
+
+    Failures become a one-line :class:`PortError` naming the port and the likely cause.
+    """
     try:
-        return serial.Serial(port, baudrate=921600, timeout=timeout_s, exclusive=True)
+        return _open(port, timeout_s)
     except serial.SerialException as exc:
         text = str(exc)
         err = getattr(exc, "errno", None)
+        if "://" in port:
+            raise PortError(f"port {port}: cannot connect ({text}; is the bridge running and reachable?)") from None
         if err == errno.ENOENT or "No such file" in text:
             raise PortError(f"port {port}: not found") from None
         if "exclusively lock" in text or err in (errno.EBUSY, errno.EAGAIN):
@@ -94,7 +108,7 @@ def _hello_problem(info: dict) -> str | None:
     return None
 
 
-class SerialReader:
+class SerialReader(Worker):
     """Reads one device on a serial port in a background thread.
 
     Parameters
@@ -129,6 +143,7 @@ class SerialReader:
         reconnect: bool = True,
         reconnect_interval_s: float = 0.1,
     ):
+        super().__init__(name=f"reader {port}")
         self.port = port
         self.rate_hz_request = rate_hz
         self.ring_seconds = ring_seconds
@@ -149,9 +164,7 @@ class SerialReader:
             "bytes": 0,
         }
         self._decoder = StreamDecoder()
-        self._ser: serial.Serial | None = None
-        self._thread: threading.Thread | None = None
-        self._stop = threading.Event()
+        self._ser: serial.SerialBase | None = None
         self._write_lock = threading.Lock()
         self._replies: queue.Queue = queue.Queue(maxsize=64)
         self._connected = threading.Event()
@@ -165,7 +178,6 @@ class SerialReader:
         self._last_frame_host_s: float | None = None
         self._resync_pending = False
         self._after_hello: list = []
-        self.error: str | None = None
 
     # -- public API (any thread) ------------------------------------------------
     @property
@@ -226,14 +238,11 @@ class SerialReader:
         self._handle_items(self._after_hello, time.monotonic())
         self._after_hello = []
         self._connected.set()
-        self._thread = threading.Thread(target=self._run, name=f"reader {self.port}", daemon=True)
-        self._thread.start()
+        self.start_thread()
 
     def stop(self) -> None:
         """Stop streaming and the thread; closes the port. Safe to call twice."""
-        self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout=5.0)
+        self.stop_thread(timeout_s=5.0)
         ser = self._ser
         if ser is not None:
             try:
@@ -303,7 +312,7 @@ class SerialReader:
                 next_ask = time.monotonic() + 0.5
         raise PortError(f"port {self.port}: no hello within {self.hello_timeout_s:g} s (is it a tapcurve device?)")
 
-    def _run(self) -> None:
+    def run(self) -> None:
         ser = self._ser
         while not self._stop.is_set():
             try:
@@ -327,11 +336,11 @@ class SerialReader:
             except (serial.SerialException, OSError):
                 pass
         if not self.reconnect:
-            self.error = f"port {self.port} vanished"
+            self.fail(f"port {self.port} vanished")
             return None
         while not self._stop.wait(self.reconnect_interval_s):
             try:
-                ser = serial.Serial(self.port, baudrate=921600, timeout=READ_WINDOW_S, exclusive=True)
+                ser = _open(self.port, READ_WINDOW_S)
             except (serial.SerialException, OSError, ValueError):
                 continue
             with self._write_lock:
@@ -340,6 +349,7 @@ class SerialReader:
             self.counters["reconnects"] += 1
             self._resync_pending = True
             self._event("reconnected", self.port)
+            self.ring.mark_restart()  # filters of every consumer start afresh here
             self._write(cmd_hello())
             self._write(cmd_start())
             self._connected.set()
@@ -358,7 +368,7 @@ class SerialReader:
                 info = dict(item.info)
                 self._event("hello", json.dumps(info))
                 if info.get("channels") != self.n_channels:
-                    self.error = (
+                    self.fail(
                         f"port {self.port}: device now sends {info.get('channels')} channels, "
                         f"was {self.n_channels}; frames ignored"
                     )
@@ -413,6 +423,7 @@ class SerialReader:
                     self._us = 0
                     d_seq[0], d_us[0] = 1, 0
                     self._event("reboot", f"device counters restarted at raw seq {int(raw_seq[0])}")
+                    ring.mark_restart()
         self._resync_pending = False
 
         # A gap of 32768 frames or more folds into the 16-bit seq; the device clock (32 bit)

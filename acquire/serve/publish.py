@@ -109,6 +109,7 @@ from typing import Callable
 import numpy as np
 
 from acquire.errors import UserError
+from acquire.session.worker import Worker
 from acquire.link.frames import FrameBlock, FrameRing
 
 __all__ = ["ShapePublisher", "parse_address", "check_address"]
@@ -236,7 +237,7 @@ class _Client:
         self.reading = True
 
 
-class ShapePublisher:
+class ShapePublisher(Worker):
     """TCP server of the shape stream (module docstring: messages, requests, threads).
 
     Parameters (keyword-only)
@@ -297,6 +298,7 @@ class ShapePublisher:
         announce: bool = True,
     ):
         self.address_text = str(address).strip()
+        super().__init__(name=f"shape stream {self.address_text}")
         self._family, self._sockaddr = check_address(self.address_text, allow_remote=allow_remote)
         self.is_loopback = _is_loopback(self._sockaddr)
         if max_rate_hz is not None and not (max_rate_hz > 0 and math.isfinite(max_rate_hz)):
@@ -324,8 +326,6 @@ class ShapePublisher:
         self._listener: socket.socket | None = None
         self._selector: selectors.BaseSelector | None = None
         self._clients: dict[int, _Client] = {}
-        self._thread: threading.Thread | None = None
-        self._stop = threading.Event()
         self._cond = threading.Condition()  # guards the statistics below and wakes wait_for_clients
         self._n_clients = 0
         self._connections = 0
@@ -334,7 +334,6 @@ class ShapePublisher:
         self._cursor = None
         self._last_counters: dict = {}
         self._dropped_closed = 0
-        self.error: str | None = None
         self._new_calibration: tuple | None = None
         self._prepare_formats()
 
@@ -400,14 +399,12 @@ class ShapePublisher:
             )
         if self.announce:
             print(f"tapcurve: shape stream on {self.bound_address} (JSON lines over TCP)", file=sys.stderr, flush=True)
-        self._thread = threading.Thread(target=self._run, name=f"publisher {self.bound_address}", daemon=True)
-        self._thread.start()
+        self.name = f"shape stream on {self.bound_address}"
+        self.start_thread()
 
     def stop(self, *, timeout_s: float = 5.0) -> None:
         """Stop the thread and close every connection. Safe to call twice."""
-        self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout=timeout_s)
+        self.stop_thread(timeout_s=timeout_s)
         for client in list(self._clients.values()):
             self._drop_client(client)
         if self._selector is not None:
@@ -423,10 +420,6 @@ class ShapePublisher:
         if self._listener is None:
             raise RuntimeError("publisher not started")
         return int(self._listener.getsockname()[1])
-
-    @property
-    def running(self) -> bool:
-        return self._thread is not None and self._thread.is_alive()
 
     def wait_for_clients(self, count: int, *, timeout_s: float) -> bool:
         """Block until at least ``count`` clients are connected (any thread); True if so."""
@@ -510,7 +503,7 @@ class ShapePublisher:
         self._prepare_formats()
 
     # -- publisher thread ----------------------------------------------------------------------
-    def _run(self) -> None:
+    def run(self) -> None:
         try:
             while not self._stop.is_set():
                 pending_out = any(c.inflight or c.queue for c in self._clients.values())
@@ -525,9 +518,8 @@ class ShapePublisher:
                 if len(block):
                     self._publish(block)
                 self._service(0.0)
-        except Exception as exc:  # never take acquisition down with us
-            self.error = f"shape stream on {self.bound_address} stopped: {type(exc).__name__}: {exc}"
-            print(f"tapcurve: {self.error}", file=sys.stderr, flush=True)
+        except Exception as exc:  # never take acquisition down with us: shown in the status line
+            self.fail(f"shape stream on {self.bound_address} stopped: {type(exc).__name__}: {exc}")
 
     def _publish(self, block: FrameBlock) -> None:
         n = len(block)

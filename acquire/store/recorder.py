@@ -22,6 +22,7 @@ import numpy as np
 
 from acquire.link.clock import ClockFit
 from acquire.errors import UserError
+from acquire.session.worker import Worker
 from acquire.link.frames import EventLog, FrameBlock, FrameRing
 from acquire.store.recording import COUNTER_NAMES, EVENT_TEXT_BYTES, LIBVER, check_label_text, create_derived, create_layout
 
@@ -34,7 +35,7 @@ def _append(ds: h5py.Dataset, values: np.ndarray) -> None:
     ds[n:] = values
 
 
-class Recorder:
+class Recorder(Worker):
     """Writes one recording from a :class:`FrameRing`.
 
     Device time in the file counts from the file's first frame; label times
@@ -94,6 +95,7 @@ class Recorder:
         max_frames: int | None = None,
         from_oldest: bool = True,
     ):
+        super().__init__(name=f"recorder {Path(path).name}")
         self.path = Path(path)
         self.ring = ring
         self.rig_toml = rig_toml
@@ -111,7 +113,6 @@ class Recorder:
         self.reached_max = threading.Event()
         if label is not None:
             check_label_text(label)
-        self.error: str | None = None
         self.frames_written = 0
         self.file_bytes = 0
         self._cursor = None
@@ -120,9 +121,8 @@ class Recorder:
         self._labels: queue.Queue = queue.Queue()
         self._open_labels: dict[int, int] = {}  # label id -> row
         self._next_label_id = 0
+        self._label_id_lock = threading.Lock()  # begin_label may be called from any thread
         self._last_t_device_s = math.nan
-        self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
         self._t0_host = 0.0
         self._finished = threading.Event()
         self._lock_fd: int | None = None
@@ -165,7 +165,7 @@ class Recorder:
             if self.pipeline is not None and getattr(self.pipeline, "s_m", None) is not None:
                 self._derived_points = create_derived(
                     f,
-                    n_segments=int(self.n_segments or self.pipeline.n_segments),
+                    n_segments=int(self.n_segments or self.pipeline.rig.n_segments),
                     s_m=self.pipeline.s_m,
                     tap_index=self.pipeline.reconstructor.tap_index,
                 )
@@ -186,18 +186,11 @@ class Recorder:
         self._t0_host = time.monotonic() if first is None else min(time.monotonic(), first)
         if self.label is not None:
             self.begin_label(self.label, t_start_s=self.FILE_START)
-        self._thread = threading.Thread(target=self._run, name=f"recorder {self.path.name}", daemon=True)
-        self._thread.start()
+        self.start_thread()
 
     def stop(self, *, timeout_s: float = 30.0) -> None:
         """Write what the ring still holds, close the file, end the thread."""
-        self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout=timeout_s)
-
-    @property
-    def running(self) -> bool:
-        return self._thread is not None and self._thread.is_alive()
+        self.stop_thread(timeout_s=timeout_s)
 
     def wait_finished(self, timeout_s: float) -> bool:
         return self._finished.wait(timeout_s)
@@ -208,8 +201,9 @@ class Recorder:
     def begin_label(self, text: str, *, t_start_s: float | None = None) -> int:
         """Open a labelled interval (device time; default: the newest frame). Returns its id."""
         check_label_text(text)
-        label_id = self._next_label_id
-        self._next_label_id += 1
+        with self._label_id_lock:
+            label_id = self._next_label_id
+            self._next_label_id += 1
         self._labels.put(("begin", label_id, text, t_start_s))
         return label_id
 
@@ -224,7 +218,7 @@ class Recorder:
         self.end_label(label_id, t_end_s=t_end_s)
 
     # -- writer thread ----------------------------------------------------------------------
-    def _run(self) -> None:
+    def run(self) -> None:
         f = self._file
         next_flush = time.monotonic() + self.flush_interval_s
         try:
@@ -241,21 +235,20 @@ class Recorder:
                     break
         except _NoRoom as exc:
             self._clean_stop = True  # nothing failed: the file can be closed normally
-            self.error = (
+            self.fail(
                 f"recording to {self.path} stopped: {exc}; the file holds the "
                 f"{self.frames_written} frames before that"
             )
         except Exception as exc:  # disk full, file removed, I/O error: stop recording only
             text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-            self.error = f"recording to {self.path} stopped: {text}"
+            self.fail(f"recording to {self.path} stopped: {text}")
         finally:
             try:
                 if self.error is None or self._clean_stop:
                     self._close_labels(f)
                 f.close()
             except Exception as exc:
-                if self.error is None:
-                    self.error = f"recording to {self.path}: closing failed: {exc}"
+                self.fail(f"recording to {self.path}: closing failed: {exc}")
             finally:
                 if self._lock_fd is not None:
                     os.close(self._lock_fd)  # releases the lock

@@ -307,6 +307,12 @@ class Recording:
             for t, fr, k, x in zip(g["t_host_s"][:n], g["frame"][:n], g["kind"][:n], g["text"][:n])
         ]
 
+    def restart_frames(self) -> list[int]:
+        """Frame indices where the stream started afresh (reconnect, device reboot), sorted."""
+        from acquire.link.frames import RESTART_EVENT_KINDS
+
+        return sorted({fr for _, fr, kind, _ in self.events() if kind in RESTART_EVENT_KINDS})
+
     def clock(self) -> dict | None:
         """The last clock fit: ``drift_ppm``, ``offset_s``, ``points``, ``span_s``; None if absent."""
         if "clock" not in self.file or self.file["clock"]["fit_drift_ppm"].shape[0] == 0:

@@ -4,10 +4,15 @@ Demo scenario, made up for the demo: one finger of a greenhouse tomato-picking
 gripper. :class:`FingerModel` is the physics (elastica, time courses, divider
 electrics, ADC), pure and deterministic; :class:`VirtualFinger` puts it on a
 real pty speaking wire protocol v1; the command line part serves
-``tapcurve virtual-device``.
+``tapcurve virtual-device``; :func:`builtin_calibration` is the calibration
+it comes with.
 """
+from acquire.virtual.builtin import builtin_calibration
 from acquire.virtual.cli import add_virtual_device_arguments, run_virtual_device
 from acquire.virtual.device import VirtualFinger
 from acquire.virtual.model import Faults, FingerModel
 
-__all__ = ["VirtualFinger", "FingerModel", "Faults", "add_virtual_device_arguments", "run_virtual_device"]
+__all__ = [
+    "VirtualFinger", "FingerModel", "Faults", "add_virtual_device_arguments", "run_virtual_device",
+    "builtin_calibration",
+]

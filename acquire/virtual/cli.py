@@ -13,7 +13,8 @@ from pathlib import Path
 
 from acquire.errors import UserError
 from acquire.rig import load_rig
-from acquire.virtual.model import SCENARIOS, Faults, parse_hold_label
+from acquire.core.labels import parse_hold_label
+from acquire.virtual.model import SCENARIOS, Faults
 
 __all__ = ["add_virtual_device_arguments", "run_virtual_device", "add_finger_arguments", "finger_settings_from_args"]
 

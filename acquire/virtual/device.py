@@ -34,7 +34,8 @@ import firmware_protocol as fp
 
 from acquire.errors import UserError
 from acquire.rig import Rig, load_rig
-from acquire.virtual.model import SCENARIOS, Faults, FingerModel, parse_hold_label
+from acquire.core.labels import parse_hold_label
+from acquire.virtual.model import SCENARIOS, Faults, FingerModel
 
 __all__ = ["VirtualFinger", "DEVICE_NAME", "FATE_NAMES"]
 
@@ -271,7 +272,7 @@ class VirtualFinger:
         self.stop()
 
     def set_hold(self, label: str | None) -> None:
-        """Press the finger onto a jig (label as in CONTRACTS.md section 5), or
+        """Press the finger onto a jig (label grammar: :mod:`acquire.core.labels`), or
         release it (None). Takes effect from the next generated frame.
 
         Raises UserError for a bad label (in the caller's thread).

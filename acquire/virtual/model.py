@@ -31,12 +31,12 @@ from __future__ import annotations
 
 import functools
 import math
-import re
 import threading
 from dataclasses import dataclass, fields
 
 import numpy as np
 
+from acquire.core.labels import parse_hold_label
 from acquire.errors import UserError
 from acquire.rig import Rig, load_rig
 
@@ -58,46 +58,8 @@ _TWO_PI = 2.0 * math.pi
 # --------------------------------------------------------------------------- labels
 
 
-_LABEL_RADIUS = re.compile(r"^radius\s*=\s*([+-]?[0-9.]+(?:[eE][+-]?\d+)?)\s*(mm|m)$")
-_LABEL_CURV = re.compile(r"^curvature\s*=\s*([+-]?[0-9.]+(?:[eE][+-]?\d+)?)\s*/\s*m$")
-
-
-def parse_hold_label(label: str) -> float:
-    """Curvature in 1/m that a jig label states.
-
-    Grammar as in CONTRACTS.md section 5: ``flat``, ``radius=25mm`` (also
-    ``radius=0.025m``), ``curvature=40/m``; negative values are allowed.
-
-    Raises
-    ------
-    UserError
-        The label is not one of these forms, or states a zero radius.
-    """
-    text = str(label).strip()
-    if text == "flat":
-        return 0.0
-    m = _LABEL_RADIUS.match(text)
-    if m:
-        try:
-            value = float(m.group(1))
-        except ValueError:
-            raise UserError(f"hold label {label!r}: bad number") from None
-        radius_m = value * (1e-3 if m.group(2) == "mm" else 1.0)
-        if radius_m == 0.0 or not math.isfinite(radius_m):
-            raise UserError(f"hold label {label!r}: radius must be non-zero")
-        return 1.0 / radius_m
-    m = _LABEL_CURV.match(text)
-    if m:
-        try:
-            value = float(m.group(1))
-        except ValueError:
-            raise UserError(f"hold label {label!r}: bad number") from None
-        if not math.isfinite(value):
-            raise UserError(f"hold label {label!r}: curvature must be finite")
-        return value
-    raise UserError(
-        f"hold label {label!r} is not flat, radius=<r>mm or curvature=<k>/m"
-    )
+# The jig label grammar is defined once, in acquire.core.labels; parse_hold_label
+# is re-exported here for code that imports it from this module.
 
 
 # --------------------------------------------------------------------------- faults

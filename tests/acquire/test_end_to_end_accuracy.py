@@ -50,7 +50,7 @@ HOLDS = ["flat", "curvature=15/m", "radius=40mm", "radius=25mm", "radius=20mm", 
 
 
 def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "acquire.commands.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "display.cli", *args], capture_output=True, text=True,
                           timeout=timeout_s, cwd=REPO)
 
 

@@ -8,7 +8,8 @@ from pathlib import Path
 
 import pytest
 
-from acquire.sources.live import LiveSession, VirtualOptions
+from acquire.session import Session
+from acquire.sources.virtual import VirtualOptions
 from acquire.virtual import Faults
 from display.health_view import HealthWindow
 
@@ -25,7 +26,7 @@ CASES = {
 
 
 def _judge(qtbot, rig, faults, *, seed=0):
-    with LiveSession(rig=rig, virtual_options=VirtualOptions(faults=faults, seed=seed)) as session:
+    with Session(rig=rig, virtual_options=VirtualOptions(faults=faults, seed=seed)) as session:
         w = HealthWindow(session=session, window_s=1.2, refresh_s=0.25)
         qtbot.addWidget(w)
         w.show()
@@ -64,7 +65,7 @@ def test_health_view_calls_a_healthy_rig_healthy(gui, qtbot, rig, artifacts):
 
 def test_health_text_mode_prints_the_table(tmp_path):
     env = dict(os.environ, PYTHONPATH=str(REPO))
-    r = subprocess.run([sys.executable, "-m", "acquire.commands.cli", "health", "--text", "--duration", "2.2",
+    r = subprocess.run([sys.executable, "-m", "display.cli", "health", "--text", "--duration", "2.2",
                         "--window", "1", "--stuck-channel", "1"], env=env, capture_output=True, text=True, timeout=60)
     assert r.returncode == 0, r.stderr
     tables = [t for t in r.stdout.split("\n\n") if t.strip()]

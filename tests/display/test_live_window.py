@@ -14,7 +14,8 @@ import pytest
 from PyQt5 import QtCore
 
 from acquire.core.reconstruct import Reconstructor, body_outline
-from acquire.sources.live import LiveSession, VirtualOptions
+from acquire.session import Session as LiveSession
+from acquire.sources.virtual import VirtualOptions
 from display.window import SAFETY_TEXT, SensorWindow
 
 REPO = Path(__file__).resolve().parents[2]
@@ -145,7 +146,7 @@ def test_ctrl_c_leaves_a_complete_recording(tmp_path):
     out = tmp_path / "interrupted.h5"
     env = dict(os.environ, QT_QPA_PLATFORM="offscreen", PYTHONPATH=str(REPO))
     proc = subprocess.Popen(
-        [sys.executable, "-m", "acquire.commands.cli", "live", "--record", str(out), "--label", "whole run (demo)"],
+        [sys.executable, "-m", "display.cli", "live", "--record", str(out), "--label", "whole run (demo)"],
         cwd=tmp_path, env=env, stderr=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
     )
     try:

@@ -12,7 +12,8 @@ import numpy as np
 import pytest
 from PyQt5 import QtCore, QtGui
 
-from acquire.sources.live import LiveSession, ReplaySource
+from acquire.session import Session
+from acquire.sources.replay import ReplaySource
 from display.window import SensorWindow
 
 REPO = Path(__file__).resolve().parents[2]
@@ -22,7 +23,7 @@ REPO = Path(__file__).resolve().parents[2]
 def recording(tmp_path_factory, rig, calibration):
     """About 4 s of the virtual finger at 1 kHz with a calibration and two labels (made up, demo)."""
     path = tmp_path_factory.mktemp("replay") / "grasp-demo.h5"
-    with LiveSession(rig=rig, calibration=calibration, record_path=path) as session:
+    with Session(rig=rig, calibration=calibration, record_path=path) as session:
         deadline = time.monotonic() + 20
         marks = [(800, "begin"), (1500, "end"), (2200, "begin2"), (3000, "end2"), (4000, "stop")]
         for n, what in marks:
@@ -134,7 +135,7 @@ def test_export_from_the_command_line_headless(recording, tmp_path, artifacts):
     env["PYTHONPATH"] = str(REPO)
     for suffix in ("png",):  # SVG goes through the same figure (tested from the window above)
         out = tmp_path / f"shape.{suffix}"
-        r = subprocess.run([sys.executable, "-m", "acquire.commands.cli", "export", str(recording), "--out", str(out),
+        r = subprocess.run([sys.executable, "-m", "display.cli", "export", str(recording), "--out", str(out),
                             "--time", "1.25"], env=env, capture_output=True, text=True, timeout=60)
         assert r.returncode == 0, r.stderr
         assert out.is_file() and out.stat().st_size > 1000
@@ -142,6 +143,6 @@ def test_export_from_the_command_line_headless(recording, tmp_path, artifacts):
     assert (img.width(), img.height()) == (1000, 720)
     img.save(str(artifacts / "export_cli_shape.png"))
     # a time outside the recording is a one-line error, exit 2
-    r = subprocess.run([sys.executable, "-m", "acquire.commands.cli", "export", str(recording), "--out",
+    r = subprocess.run([sys.executable, "-m", "display.cli", "export", str(recording), "--out",
                         str(tmp_path / "x.png"), "--time", "999"], env=env, capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and r.stderr.count("\n") == 1 and "--time 999" in r.stderr

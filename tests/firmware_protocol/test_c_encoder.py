@@ -576,7 +576,7 @@ def test_demo_stream_through_pty_and_record(c_build, tmp_path):
     out = tmp_path / "c_demo.h5"
     try:
         res = subprocess.run(
-            [sys.executable, "-m", "acquire.commands.cli", "record", "--port", port, "--rig", str(rig),
+            [sys.executable, "-m", "display.cli", "record", "--port", port, "--rig", str(rig),
              "--out", str(out), "--duration", "2", "--quiet"],
             capture_output=True, text=True, timeout=60, cwd=Path(__file__).resolve().parents[2],
         )

@@ -19,7 +19,7 @@ REPO = Path(__file__).resolve().parents[3]
 
 
 def tapcurve(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "acquire.commands.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "display.cli", *args], capture_output=True, text=True,
                           timeout=60, cwd=REPO)
 
 

@@ -22,7 +22,7 @@ RIG = REPO / "acquire" / "rigs" / "demo_finger.toml"
 
 def tapcurve(*args: str, timeout_s: float = 60.0) -> subprocess.CompletedProcess:
     return subprocess.run(
-        [sys.executable, "-m", "acquire.commands.cli", *args],
+        [sys.executable, "-m", "display.cli", *args],
         capture_output=True,
         text=True,
         timeout=timeout_s,
@@ -44,7 +44,7 @@ def assert_user_error(result: subprocess.CompletedProcess, *words: str) -> None:
 def device(tmp_path):
     """A virtual finger process on a pty; yields its port path."""
     proc = subprocess.Popen(
-        [sys.executable, "-m", "acquire.commands.cli", "virtual-device", "--link", str(tmp_path / "finger")],
+        [sys.executable, "-m", "display.cli", "virtual-device", "--link", str(tmp_path / "finger")],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,

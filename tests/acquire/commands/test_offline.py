@@ -13,7 +13,7 @@ commands produce can be checked against that law:
 - a uniform curvature k bends a strip of length L into a circular arc with its
   end at (sin(kL)/k, (1 - cos kL)/k) (circle geometry).
 
-Bad input is run as a subprocess (`python -m acquire.commands.cli`): exit 2, one line
+Bad input is run as a subprocess (`python -m display.cli`): exit 2, one line
 on stderr naming the thing at fault, no traceback.
 """
 from __future__ import annotations
@@ -32,7 +32,7 @@ import h5py
 import numpy as np
 import pytest
 
-from acquire.commands.cli import main as cli_main
+from display.cli import main as cli_main
 from acquire.link.frames import FrameBlock, FrameRing
 from acquire.store.recorder import Recorder
 from acquire.rig import load_rig
@@ -136,7 +136,7 @@ def calibration(holds_file):
 
 
 def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "acquire.commands.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "display.cli", *args], capture_output=True, text=True,
                           timeout=timeout_s, cwd=REPO)
 
 

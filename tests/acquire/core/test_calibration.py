@@ -320,3 +320,106 @@ def test_tare_moves_r0_and_keeps_the_relative_law(rig):
         cal.tared(np.array([1.0, 1.0, np.nan, 1.0, 1.0, 1.0]))
     with pytest.raises(CalibrationError, match="6 flat"):
         cal.tared(np.ones(5))
+
+
+# ----------------------------------------------------------------------------- file checks
+# JSON is RFC 8259: NaN and Infinity are not JSON, yet Python's json module reads
+# them (its documented extension), so the schema must refuse them itself.
+
+def _edited_file(tmp_path, rig, edit):
+    cal, _ = fit_calibration(synthetic_holds(), rig=rig)
+    d = json.loads(cal.to_json())
+    edit(d)
+    p = tmp_path / "cal.json"
+    p.write_text(json.dumps(d), encoding="utf-8")  # json.dumps writes NaN / Infinity as given
+    return p
+
+
+def _set(path, value):
+    def edit(d):
+        node = d
+        for key in path[:-1]:
+            node = node[key]
+        node[path[-1]] = value
+    return edit
+
+
+@pytest.mark.parametrize(
+    "path, value, words",
+    [
+        (("model", "segments", 2, "positive", 0), float("nan"), "model.segments[2].positive[0] must be a finite"),
+        (("model", "segments", 0, "negative", 1), float("inf"), "model.segments[0].negative[1] must be a finite"),
+        (("model", "segments", 1, "positive", 0), 1e300, "model.segments[1].positive[0] = 1e+300 is outside"),
+        (("model", "segments", 3, "curvature_max_per_m"), 1e308, "model.segments[3].curvature_max_per_m"),
+        (("model", "segments", 3, "x_min"), -5.0, "model.segments[3].x_min = -5.0 is outside -1 .. 0"),
+        (("model", "segments", 3, "x_max"), "big", "model.segments[3].x_max must be a number"),
+        (("model", "segments", 4, "positive"), [], "model.segments[4].positive must be a list of 1 .. 8"),
+        (("r0_ohm", 5), float("nan"), "r0_ohm[5] must be a finite number"),
+        (("r0_ohm", 5), -3.0, "r0_ohm[5] = -3.0 is outside"),
+        (("r0_ohm",), "x", "r0_ohm must be a list"),
+        (("rig", "r_ref_ohm"), float("inf"), "rig.r_ref_ohm must be a finite number"),
+        (("rig", "segment_lengths_mm", 0), 1e300, "rig.segment_lengths_mm[0] = 1e+300 is outside"),
+        (("rig", "n_segments"), 6.5, "rig.n_segments must be a whole number"),
+        (("rig",), [], "rig must be an object"),
+        (("model", "segments", 0, "x_max"), True, "x_max must be a number"),
+    ],
+)
+def test_absurd_calibration_files_name_file_and_key(tmp_path, rig, path, value, words):
+    p = _edited_file(tmp_path, rig, _set(path, value))
+    with pytest.raises(CalibrationError) as info:
+        Calibration.load(p)
+    msg = str(info.value)
+    assert msg.startswith(str(p)) and words in msg and "\n" not in msg, msg
+
+
+def test_missing_key_is_named(tmp_path, rig):
+    p = _edited_file(tmp_path, rig, lambda d: d["model"]["segments"][1].pop("x_min"))
+    with pytest.raises(CalibrationError, match=r"cal.json: missing key model.segments\[1\].x_min"):
+        Calibration.load(p)
+
+
+def test_reference_table_values_are_bounded(tmp_path):
+    # the bound is the label bound, |curvature| <= 1e4 1/m (acquire.core.labels)
+    for entry in ("1e308", '"1e308"', "inf", '"radius=0.01mm"'):
+        p = tmp_path / "jigs.toml"
+        p.write_text(f'[references]\n"jig" = [{entry}]\n', encoding="utf-8")
+        with pytest.raises(CalibrationError) as info:
+            load_reference_table(p)
+        msg = str(info.value)
+        assert "jigs.toml" in msg and "'jig'" in msg and "10000 1/m" in msg, msg
+        assert msg.count("jigs.toml") == 1
+
+
+def test_other_segment_lengths_are_refused(rig):
+    # README "Commands": a calibration for another rig exits 2; lengths decide what curvature means
+    cal, _ = fit_calibration(synthetic_holds(), rig=rig)
+    longer = parse_rig(rig.text.replace("[16.0, 16.0, 16.0,", "[16.0, 20.0, 16.0,"), source="longer.toml")
+    with pytest.raises(CalibrationError) as info:
+        cal.check_rig(longer)
+    msg = str(info.value)
+    assert "segment lengths" in msg and "longer.toml" in msg and "20.0" in msg and "\n" not in msg
+    other_r_ref = parse_rig(rig.text.replace("r_ref_ohm = 10000.0", "r_ref_ohm = 4700.0"), source="r.toml")
+    with pytest.raises(CalibrationError, match="r_ref_ohm"):
+        cal.check_rig(other_r_ref)
+
+
+def test_load_for_rig_refuses_other_lengths(tmp_path, rig):
+    from acquire.core.calibration import load_for_rig
+
+    cal, _ = fit_calibration(synthetic_holds(), rig=rig)
+    p = tmp_path / "cal.json"
+    cal.save(p)
+    assert load_for_rig(p, rig) is not None
+    longer = parse_rig(rig.text.replace("[16.0, 16.0, 16.0,", "[16.0, 20.0, 16.0,"), source="longer.toml")
+    with pytest.raises(UserError, match="segment lengths"):
+        load_for_rig(p, longer)
+
+
+def test_same_recording_twice_is_refused():
+    from acquire.core.calibration import check_distinct_recordings
+
+    check_distinct_recordings([{"path": "a.h5", "sha256": "1"}, {"path": "b.h5", "sha256": "2"}])
+    with pytest.raises(CalibrationError, match="b.h5: the same recording as a.h5"):
+        check_distinct_recordings([{"path": "a.h5", "sha256": "1"}, {"path": "b.h5", "sha256": "1"}])
+    with pytest.raises(CalibrationError, match="a.h5: the same recording as a.h5"):
+        check_distinct_recordings([{"path": "a.h5", "sha256": "1"}, {"path": "a.h5", "sha256": "1"}])

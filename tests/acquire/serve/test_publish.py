@@ -408,7 +408,7 @@ def test_cli_record_publishes(tmp_path):
     ).save(cal_path)
     env = dict(os.environ, PYTHONUNBUFFERED="1")
     dev = subprocess.Popen(
-        [sys.executable, "-m", "acquire.commands.cli", "virtual-device", "--link", str(tmp_path / "finger")],
+        [sys.executable, "-m", "display.cli", "virtual-device", "--link", str(tmp_path / "finger")],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO, env=env,
     )
     rec = None
@@ -417,7 +417,7 @@ def test_cli_record_publishes(tmp_path):
         assert port, dev.stderr.read()
         out = tmp_path / "rec.h5"
         rec = subprocess.Popen(
-            [sys.executable, "-m", "acquire.commands.cli", "record", "--port", port, "--rig", str(RIG), "--out", str(out),
+            [sys.executable, "-m", "display.cli", "record", "--port", port, "--rig", str(RIG), "--out", str(out),
              "--duration", "2", "--calibration", str(cal_path), "--publish", "127.0.0.1:0"],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO, env=env,
         )
@@ -445,7 +445,7 @@ def test_cli_record_publishes(tmp_path):
         client.close()
         # a non-loopback address without --publish-allow-remote: exit 2, one line naming it
         bad = subprocess.run(
-            [sys.executable, "-m", "acquire.commands.cli", "record", "--port", port, "--rig", str(RIG),
+            [sys.executable, "-m", "display.cli", "record", "--port", port, "--rig", str(RIG),
              "--out", str(tmp_path / "bad.h5"), "--duration", "1", "--publish", "0.0.0.0:0"],
             capture_output=True, text=True, cwd=REPO, env=env, timeout=60,
         )

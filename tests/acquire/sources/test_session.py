@@ -12,7 +12,10 @@ from acquire.errors import UserError
 from acquire.link.frames import FrameBlock
 from acquire.core.reconstruct import Reconstructor
 from acquire.rig import load_rig
-from acquire.sources.live import LiveSession, ReplaySource, ViewFeed, VirtualOptions
+from acquire.session import Session
+from acquire.sources.feed import ViewFeed
+from acquire.sources.replay import ReplaySource
+from acquire.sources.virtual import VirtualOptions
 from acquire.virtual import FingerModel
 
 
@@ -110,7 +113,7 @@ def test_feed_snapshot_only_when_new(rig):
 def test_live_session_shape_is_the_arc_of_the_jig(rig, calibration, tmp_path):
     # the finger held on a jig of uniform curvature 40/m: the drawn curve must be that circle's arc
     # (x = sin(k s)/k, y = (1 - cos(k s))/k: circle through the origin heading +x, plane geometry)
-    session = LiveSession(rig=rig, calibration=calibration,
+    session = Session(rig=rig, calibration=calibration,
                           virtual_options=VirtualOptions(hold="curvature=40/m", seed=0))  # the calibrated sensor
     with session:
         _wait(lambda: session.feed.snapshot() is not None and session.feed.snapshot().frames > 600, 10, "frames")
@@ -131,7 +134,7 @@ def test_live_session_shape_is_the_arc_of_the_jig(rig, calibration, tmp_path):
 
 def test_recording_started_later_begins_at_the_click_and_keeps_labels(rig, calibration, tmp_path):
     path = tmp_path / "later.h5"
-    with LiveSession(rig=rig, calibration=calibration) as session:
+    with Session(rig=rig, calibration=calibration) as session:
         _wait(lambda: session.reader.ring.written > 1500, 10, "1.5 s of frames")
         newest_at_start = int(session.reader.ring.latest(1).seq[-1])
         session.start_recording(path)
@@ -176,7 +179,7 @@ def test_recording_started_later_begins_at_the_click_and_keeps_labels(rig, calib
 
 
 def test_labels_need_a_recording(rig):
-    with LiveSession(rig=rig, virtual_options=VirtualOptions(rate_hz=200.0)) as session:
+    with Session(rig=rig, virtual_options=VirtualOptions(rate_hz=200.0)) as session:
         with pytest.raises(UserError, match="start recording first"):
             session.begin_label("flat")
         with pytest.raises(UserError, match="no calibration"):
@@ -190,7 +193,7 @@ def test_labels_need_a_recording(rig):
 @pytest.fixture(scope="module")
 def recording(tmp_path_factory, rig, calibration):
     path = tmp_path_factory.mktemp("replay") / "grasp.h5"
-    with LiveSession(rig=rig, calibration=calibration, record_path=path, record_label="grasp (demo)") as session:
+    with Session(rig=rig, calibration=calibration, record_path=path, record_label="grasp (demo)") as session:
         _wait(lambda: session.status()["recording_frames"] > 3000, 15, "3 s recorded")
     return path
 
@@ -254,7 +257,7 @@ def test_replay_plays_in_order_at_speed(recording, speed):
 
 def test_replay_follows_a_growing_file(rig, tmp_path):
     path = tmp_path / "growing.h5"
-    with LiveSession(rig=rig, record_path=path, virtual_options=VirtualOptions(rate_hz=500.0)) as session:
+    with Session(rig=rig, record_path=path, virtual_options=VirtualOptions(rate_hz=500.0)) as session:
         _wait(lambda: session.status()["recording_frames"] > 200, 10, "first frames on disk")
         src = ReplaySource(path=path, follow=True).start()
         try:

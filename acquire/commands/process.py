@@ -1,0 +1,261 @@
+"""``tapcurve process``: a copy of a recording with ``/derived`` computed (the input is never modified).
+
+Threads: the calling (main) thread.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import errno
+import math
+import os
+import sys
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence, TextIO
+
+import h5py
+import numpy as np
+
+from acquire.core.calibration import (
+    Calibration,
+    CalibrationError,
+    FitReport,
+    Hold,
+    LabelError,
+    fit_calibration,
+    file_sha256,
+    load_reference_table,
+    reference_for,
+    software_version,
+    steady_part,
+)
+from acquire.errors import UserError
+from acquire.core.pipeline import iter_processed
+from acquire.core.reconstruct import Reconstructor
+from acquire.store.recording import LIBVER, Recording, create_derived, open_recording
+from acquire.store.outputs import check_output
+from acquire.commands.common import (
+    CHUNK_FRAMES, MIN_STEADY_FRAMES, PROGRESS_LOG_MIN_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, TARE_WARN_FRACTION,
+    _Rows, _adc_bits, _warn, check_recording_rig, filtered_intervals, publish_output, recording_rate_hz,
+    recording_rig, write_text_output,
+)
+from acquire.rig import Rig, RigError, load_rig, parse_rig
+
+__all__ = ["process_recording", "process_command"]
+
+
+class _Progress:
+    """A progress bar on a terminal, or sparse progress lines in a log."""
+
+    def __init__(self, *, total: int, enabled: bool, stream: TextIO, label: str):
+        self.total = max(1, int(total))
+        self.stream = stream
+        tty = enabled and bool(getattr(stream, "isatty", lambda: False)())
+        self.mode = None
+        if enabled and tty and total >= PROGRESS_MIN_FRAMES:
+            self.mode = "bar"
+        elif enabled and total >= PROGRESS_LOG_MIN_FRAMES:
+            self.mode = "lines"
+        self.label = label
+        self._next_line = 0.25
+
+    def update(self, done: int) -> None:
+        f = min(1.0, done / self.total)
+        if self.mode == "bar":
+            width = 30
+            fill = int(round(f * width))
+            self.stream.write(f"\r{self.label} [{'#' * fill}{'.' * (width - fill)}] {100 * f:5.1f} %")
+            self.stream.flush()
+        elif self.mode == "lines" and f >= self._next_line:
+            self.stream.write(f"tapcurve: {self.label}: {100 * f:.0f} % ({done} of {self.total} frames)\n")
+            self.stream.flush()
+            while self._next_line <= f:
+                self._next_line += 0.25
+
+    def close(self) -> None:
+        if self.mode == "bar":
+            self.stream.write("\n")
+            self.stream.flush()
+
+
+def _copy_attrs(src, dst, *, skip=()) -> None:
+    for key, value in src.attrs.items():
+        if key not in skip:
+            dst.attrs[key] = value
+
+
+def _utc_now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def process_recording(
+    file: str | os.PathLike,
+    *,
+    calibration_path: str | os.PathLike,
+    out_path: str | os.PathLike,
+    zero_phase: bool = False,
+    progress: bool = False,
+    chunk_frames: int = CHUNK_FRAMES,
+    progress_stream: TextIO | None = None,
+) -> dict:
+    """Write a copy of a recording with ``/derived`` computed from a calibration.
+
+    The copy holds every group of ``file`` except its old ``/derived`` (if
+    any), the root attributes with ``calibration_json`` set to the calibration
+    used, and a new ``/derived``: ``curvature`` float32 (N, S) 1/m, ``s_m``
+    float64 (P,) m, ``xy`` float32 (N, P, 2) m, each with ``units``. The copy is
+    written under a temporary name and appears under ``out_path`` only when
+    complete. ``file`` is only read (but recovered first if a killed recorder
+    left it unclosed).
+
+    Parameters
+    ----------
+    zero_phase : bool
+        Forward-backward filters (no delay, offline only) instead of the live
+        path's causal ones; needs 8 * S bytes per frame in memory.
+    progress : bool
+        Allow a progress bar (shown on a terminal for long files).
+
+    Returns
+    -------
+    dict
+        ``frames``, ``nan_frames`` (frames without a shape), ``outside_frames``
+        (per segment, beyond the calibrated range), ``filter``, ``notes``.
+
+    Raises
+    ------
+    UserError
+        ``out_path`` exists or cannot be written, the recording is missing,
+        unreadable or still being written, the calibration is unreadable or
+        does not fit the recording's rig.
+    """
+    src_path = Path(file)
+    out = Path(out_path)
+    check_output(out, option="--out", force=False, inputs=[src_path, Path(calibration_path)], what="processed copy", can_force=False)
+    cal = Calibration.load(calibration_path)
+    cal_sha = file_sha256(calibration_path)
+    notes: list[str] = []
+    with open_recording(src_path, allow_live=False) as rec:
+        if rec.recovered:
+            notes.append(f"{rec.path}: was left unclosed by its recorder; recovered before reading")
+        rig = recording_rig(rec)
+        notes.extend(cal.check_rig(rig))
+        n = rec.n_frames
+        raw = rec.file["raw"]
+        rate, rate_notes = recording_rate_hz(rec, t_device_s=raw["t_device_s"][: min(n, 100_000)])
+        bits, bit_notes = _adc_bits(rec)
+        notes.extend(rate_notes + bit_notes)
+        if rec.has_derived:
+            notes.append(f"{rec.path}: has /derived already; the copy gets a new one")
+        recon = Reconstructor.from_rig(rig, spacing_m=SPACING_M)
+        s_m = recon.s_m
+        src_sha = file_sha256(src_path)
+        tmp = out.with_name(f".{out.name}.{os.getpid()}.partial")
+        try:
+            fo = h5py.File(tmp, "w-", libver=LIBVER)
+        except (OSError, FileExistsError) as exc:
+            raise UserError(f"{out}: cannot create ({exc})") from None
+        outside = np.zeros(rig.n_segments, dtype=np.int64)
+        nan_frames = 0
+        bar = _Progress(total=n, enabled=progress, stream=progress_stream or sys.stderr, label=f"processing {src_path.name}")
+        try:
+            with fo:
+                fi = rec.file
+                _copy_attrs(fi, fo, skip=("calibration_json",))
+                fo.attrs["calibration_json"] = cal.to_json()
+                for name in fi:
+                    if name != "derived":
+                        fi.copy(fi[name], fo, name=name)
+                # a killed writer may have extended one /raw column further than the rest
+                for name, ds in fo["raw"].items():
+                    if isinstance(ds, h5py.Dataset) and ds.shape and ds.shape[0] > n and ds.maxshape[0] is None:
+                        ds.resize(n, axis=0)
+                n_points = create_derived(fo, n_segments=rig.n_segments, s_m=s_m, tap_index=recon.tap_index)
+                g = fo["derived"]
+                curv, xy = g["curvature"], g["xy"]
+                curv.resize(n, axis=0)
+                xy.resize(n, axis=0)
+                for start, p in iter_processed(
+                    _Rows(raw["adc"], n), rig=rig, calibration=cal, rate_hz=rate, adc_bits=bits,
+                    spacing_m=SPACING_M, zero_phase=zero_phase, chunk_frames=chunk_frames,
+                    restarts=rec.restart_frames(),
+                ):
+                    stop = start + len(p)
+                    curv[start:stop] = p.curvature_per_m
+                    xy[start:stop] = p.xy_m[:, :n_points]
+                    outside += p.outside_calibration.sum(axis=0)
+                    nan_frames += int(np.count_nonzero(~np.isfinite(p.curvature_per_m).all(axis=1)))
+                    bar.update(stop)
+                a = g.attrs
+                a["filter"] = "zero-phase (forward-backward, offline)" if zero_phase else "causal (as live)"
+                a["spike_window"] = rig.spike_window
+                a["lowpass_hz"] = rig.lowpass_hz
+                a["lowpass_order"] = rig.lowpass_order
+                a["rate_hz"] = rate
+                a["method"] = "smooth"
+                a["processed_utc"] = _utc_now()
+                a["software_version"] = software_version()
+                a["source_file"] = src_path.name
+                a["source_sha256"] = src_sha
+                a["calibration_file"] = Path(calibration_path).name
+                a["calibration_sha256"] = cal_sha
+                a["frames_without_shape"] = nan_frames
+                a["frames_outside_calibration"] = outside
+                a["tap_index"] = recon.tap_index
+            bar.close()
+            try:
+                publish_output(tmp, out, replace=False)  # never replaces a file that appeared meanwhile
+            except FileExistsError:
+                raise UserError(f"{out}: exists; tapcurve never overwrites (choose another --out)") from None
+            except OSError as exc:
+                raise UserError(f"{out}: cannot write ({exc.strerror or exc})") from None
+        except OSError as exc:  # disk full and the like while writing the copy
+            raise UserError(f"{out}: writing failed ({str(exc).splitlines()[0] if str(exc) else exc})") from None
+        finally:
+            try:
+                tmp.unlink()
+            except FileNotFoundError:
+                pass
+    for k in np.flatnonzero(outside):
+        notes.append(
+            f"segment {int(k)}: {int(outside[k])} of {n} frames ({100.0 * outside[k] / max(n, 1):.1f} %) beyond the "
+            f"calibrated range {cal.curvature_min_per_m[k]:.2f} .. {cal.curvature_max_per_m[k]:.2f} 1/m (extrapolated)"
+        )
+    if nan_frames:
+        notes.append(f"{nan_frames} of {n} frames have no shape (unmeasurable readings: open tap, short, saturation)")
+    return {
+        "frames": n,
+        "nan_frames": nan_frames,
+        "outside_frames": outside.tolist(),
+        "filter": "zero-phase" if zero_phase else "causal",
+        "notes": notes,
+    }
+
+
+def process_command(
+    *,
+    file: str,
+    calibration_path: str,
+    out_path: str,
+    zero_phase: bool = False,
+    progress: bool = True,
+    stdout: TextIO | None = None,
+    stderr: TextIO | None = None,
+) -> int:
+    """``tapcurve process FILE --calibration CAL --out OUT.h5 [--zero-phase] [--quiet]``. Returns 0."""
+    stdout = stdout or sys.stdout
+    stderr = stderr or sys.stderr
+    summary = process_recording(
+        file, calibration_path=calibration_path, out_path=out_path, zero_phase=zero_phase,
+        progress=progress, progress_stream=stderr,
+    )
+    for note in summary["notes"]:
+        _warn(note, stderr)
+    print(
+        f"{out_path}: {summary['frames']} frames with /derived ({summary['filter']} filters, "
+        f"calibration {calibration_path})",
+        file=stdout,
+    )
+    return 0
+
