@@ -15,13 +15,9 @@ with the offscreen platform.
 """
 from __future__ import annotations
 
-import math
 import os
-import signal
 import sys
-import threading
 import time
-from pathlib import Path
 
 from acquire.errors import UserError
 from acquire.session.signals import StopSignals

@@ -10,9 +10,7 @@ import json
 import math
 import signal
 import sys
-import threading
 import time
-from pathlib import Path
 
 from acquire.errors import UserError
 
@@ -162,7 +160,7 @@ def main(argv: list[str] | None = None, *, window_commands=None) -> int:
     try:
         args = parser.parse_args(argv)
         if args.version:
-            from acquire.store.recording import software_version
+            from acquire.about import software_version
 
             print(f"tapcurve {software_version()}")
             return 0

@@ -11,37 +11,20 @@ stdout. Threads: the calling (main) thread.
 """
 from __future__ import annotations
 
-import datetime as _dt
 import errno
 import math
 import os
 import sys
-import warnings
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Sequence, TextIO
 
 import h5py
 import numpy as np
 
-from acquire.core.calibration import (
-    Calibration,
-    CalibrationError,
-    FitReport,
-    Hold,
-    LabelError,
-    fit_calibration,
-    file_sha256,
-    load_reference_table,
-    reference_for,
-    software_version,
-    steady_part,
-)
 from acquire.errors import UserError
 from acquire.core.pipeline import iter_processed
-from acquire.core.reconstruct import Reconstructor
-from acquire.store.recording import LIBVER, Recording, create_derived, open_recording
-from acquire.rig import Rig, RigError, load_rig, parse_rig
+from acquire.store.recording import Recording
+from acquire.rig import Rig, RigError, parse_rig
 
 __all__ = [
     "recording_rig",

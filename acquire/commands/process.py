@@ -4,43 +4,29 @@ Threads: the calling (main) thread.
 """
 from __future__ import annotations
 
-import datetime as _dt
-import errno
-import math
 import os
 import sys
-import warnings
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence, TextIO
+from typing import TextIO
 
 import h5py
 import numpy as np
 
 from acquire.core.calibration import (
     Calibration,
-    CalibrationError,
-    FitReport,
-    Hold,
-    LabelError,
-    fit_calibration,
     file_sha256,
-    load_reference_table,
-    reference_for,
-    software_version,
-    steady_part,
 )
+from acquire.about import utc_now_iso
+from acquire.about import software_version
 from acquire.errors import UserError
 from acquire.core.pipeline import iter_processed
 from acquire.core.reconstruct import Reconstructor
-from acquire.store.recording import LIBVER, Recording, create_derived, open_recording
+from acquire.store.recording import LIBVER, create_derived, open_recording
 from acquire.store.outputs import check_output
 from acquire.commands.common import (
-    CHUNK_FRAMES, MIN_STEADY_FRAMES, PROGRESS_LOG_MIN_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, TARE_WARN_FRACTION,
-    _Rows, _adc_bits, _warn, check_recording_rig, filtered_intervals, publish_output, recording_rate_hz,
-    recording_rig, write_text_output,
+    CHUNK_FRAMES, PROGRESS_LOG_MIN_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, _Rows, _adc_bits, _warn, publish_output, recording_rate_hz,
+    recording_rig,
 )
-from acquire.rig import Rig, RigError, load_rig, parse_rig
 
 __all__ = ["process_recording", "process_command"]
 
@@ -83,10 +69,6 @@ def _copy_attrs(src, dst, *, skip=()) -> None:
     for key, value in src.attrs.items():
         if key not in skip:
             dst.attrs[key] = value
-
-
-def _utc_now() -> str:
-    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
 def process_recording(
@@ -194,7 +176,7 @@ def process_recording(
                 a["lowpass_order"] = rig.lowpass_order
                 a["rate_hz"] = rate
                 a["method"] = "smooth"
-                a["processed_utc"] = _utc_now()
+                a["processed_utc"] = utc_now_iso()
                 a["software_version"] = software_version()
                 a["source_file"] = src_path.name
                 a["source_sha256"] = src_sha

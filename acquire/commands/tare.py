@@ -6,44 +6,28 @@ calling (main) thread.
 """
 from __future__ import annotations
 
-import datetime as _dt
-import errno
-import math
 import os
 import sys
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence, TextIO
+from typing import TextIO
 
-import h5py
 import numpy as np
 
 from acquire.core.calibration import (
     Calibration,
-    CalibrationError,
-    FitReport,
-    Hold,
-    LabelError,
-    fit_calibration,
-    file_sha256,
-    load_reference_table,
-    reference_for,
-    software_version,
     steady_part,
 )
 from acquire.errors import UserError
-from acquire.core.pipeline import iter_processed, tare_calibration
-from acquire.core.reconstruct import Reconstructor
-from acquire.store.recording import LIBVER, Recording, create_derived, open_recording
+from acquire.core.pipeline import tare_calibration
+from acquire.store.recording import open_recording
 from acquire.store.outputs import check_output
 from acquire.commands.calibrate import holds_from_recording
 from acquire.commands.common import (
-    CHUNK_FRAMES, MIN_STEADY_FRAMES, PROGRESS_LOG_MIN_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, TARE_WARN_FRACTION,
-    _Rows, _adc_bits, _warn, check_recording_rig, filtered_intervals, publish_output, recording_rate_hz,
+    MIN_STEADY_FRAMES, TARE_WARN_FRACTION,
+    _adc_bits, _warn, filtered_intervals, recording_rate_hz,
     recording_rig, write_text_output,
 )
-from acquire.rig import Rig, RigError, load_rig, parse_rig
 
 __all__ = ["TareRun", "tare_from_recording", "tare_command"]
 

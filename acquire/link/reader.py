@@ -43,6 +43,7 @@ from firmware_protocol import (
 )
 
 from acquire.errors import UserError
+from acquire.link.counters import LINK_COUNTER_NAMES
 from acquire.link.frames import Event, EventLog, FrameBlock, FrameRing
 from acquire.session.worker import Worker
 
@@ -153,16 +154,7 @@ class SerialReader(Worker):
         self.hello: dict = {}
         self.ring: FrameRing | None = None
         self.events = EventLog()
-        self.counters = {
-            "frames": 0,
-            "frames_lost": 0,
-            "late_frames": 0,
-            "tx_overflow_frames": 0,
-            "reconnects": 0,
-            "reboots": 0,
-            "seq_discontinuities": 0,
-            "bytes": 0,
-        }
+        self.counters = {name: 0 for name in LINK_COUNTER_NAMES}
         self._decoder = StreamDecoder()
         self._ser: serial.SerialBase | None = None
         self._write_lock = threading.Lock()

@@ -19,7 +19,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from acquire.errors import UserError
 from acquire.link.frames import FrameBlock
 from acquire.rig import Rig
 

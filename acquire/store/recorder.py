@@ -23,7 +23,7 @@ import numpy as np
 from acquire.link.clock import ClockFit
 from acquire.errors import UserError
 from acquire.session.worker import Worker
-from acquire.link.frames import EventLog, FrameBlock, FrameRing
+from acquire.link.frames import EventLog, FrameRing
 from acquire.store.recording import COUNTER_NAMES, EVENT_TEXT_BYTES, LIBVER, check_label_text, create_derived, create_layout
 
 __all__ = ["Recorder"]

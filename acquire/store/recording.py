@@ -13,7 +13,6 @@ Files are written with HDF5 1.10 file-format features (``libver=("v110",
 """
 from __future__ import annotations
 
-import datetime as _dt
 import json
 import os
 import struct
@@ -23,7 +22,10 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from acquire.about import software_version, utc_now_iso
 from acquire.errors import UserError
+from acquire.link.counters import LINK_COUNTER_NAMES
+from firmware_protocol import DROP_CAUSES
 from acquire.link.frames import FrameBlock
 from acquire.store.h5repair import clear_write_flags, superblock_flags, writer_alive
 
@@ -49,36 +51,11 @@ LABEL_BYTES = 128
 EVENT_TEXT_BYTES = 1024
 LIBVER = ("v110", "v110")
 #: columns of /counters/values, one row per flush
-COUNTER_NAMES = (
-    "frames",
-    "frames_lost",
-    "late_frames",
-    "tx_overflow_frames",
-    "reconnects",
-    "reboots",
-    "seq_discontinuities",
-    "bytes",
-    "drop_cobs",
-    "drop_short",
-    "drop_crc",
-    "drop_kind",
-    "drop_length",
-    "drop_body",
-    "ring_lost_frames",
-)
+COUNTER_NAMES = LINK_COUNTER_NAMES + tuple(f"drop_{cause}" for cause in DROP_CAUSES) + ("ring_lost_frames",)
 
 
 class RecordingError(UserError):
     """A file that is not a readable recording."""
-
-
-def software_version() -> str:
-    try:
-        from importlib.metadata import version
-
-        return version("tapcurve")
-    except Exception:  # not installed (running from a source tree)
-        return "0+unknown"
 
 
 def check_label_text(text: str) -> bytes:
@@ -131,7 +108,7 @@ def create_layout(
     a = f.attrs
     a["layout"] = LAYOUT
     a["layout_version"] = LAYOUT_VERSION
-    a["created_utc"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
+    a["created_utc"] = utc_now_iso()
     a["software_version"] = software_version()
     a["rig_toml"] = rig_toml
     a["device_hello"] = device_hello
