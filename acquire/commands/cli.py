@@ -14,7 +14,7 @@ import time
 
 from acquire.errors import UserError
 
-__all__ = ["main", "build_parser"]
+__all__ = ["main", "build_parser", "number_in"]
 
 SAFETY_NOTE = (
     "Safety: pressurised actuators can burst and mains-powered rigs can shock. Follow your lab's rules and "
@@ -29,17 +29,26 @@ class _Parser(argparse.ArgumentParser):
         raise UserError(f"{where}: {message}" if where else message)
 
 
-def _positive_float(name: str):
+def number_in(name: str, lo: float, hi: float, *, unit: str = "", lo_open: bool = False):
+    """An argparse type: a finite number within [lo, hi] (``(lo, hi]`` with ``lo_open``); the message names the bound."""
+    unit_text = f" {unit}" if unit else ""
+    bound = f"{'above' if lo_open else 'at least'} {lo:g}{unit_text} and at most {hi:g}{unit_text}"
+
     def parse(text: str) -> float:
         try:
             value = float(text)
         except ValueError:
             raise argparse.ArgumentTypeError(f"{name} must be a number, got {text!r}") from None
-        if not (value > 0 and math.isfinite(value)):
-            raise argparse.ArgumentTypeError(f"{name} must be positive, got {text!r}")
+        ok = math.isfinite(value) and (value > lo if lo_open else value >= lo) and value <= hi
+        if not ok:
+            raise argparse.ArgumentTypeError(f"{name} {text}: must be {bound}")
         return value
 
     return parse
+
+
+#: longest --duration: 30 days, s (a run longer than that is a mistake in the number, common practice, no source)
+MAX_DURATION_S = 30 * 86400.0
 
 
 def _add_publish(p: argparse.ArgumentParser) -> None:
@@ -51,7 +60,7 @@ def _add_publish(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument(
         "--publish-rate-hz",
-        type=_positive_float("--publish-rate-hz"),
+        type=number_in("--publish-rate-hz", 0.0, 100_000.0, unit="Hz", lo_open=True),
         metavar="HZ",
         help="at most HZ shape-stream messages per second to each client (default: every frame)",
     )
@@ -72,7 +81,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--calibration", help="calibration JSON")
     p.add_argument("--record", metavar="FILE", help="record to FILE from the start")
     p.add_argument("--headless", action="store_true", help="no window even if a display is available")
-    p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds (headless use)")
+    p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds (headless use)")
     _add_publish(p)
     p.add_argument("--label", help="with --record: mark the whole recording as one labelled interval")
     from acquire.sources.virtual import add_virtual_source_arguments
@@ -84,7 +93,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rig", required=True, help="rig file (TOML)")
     p.add_argument("--out", required=True, help="recording to create (never overwritten)")
     p.add_argument("--label", help="mark the whole recording as one labelled interval")
-    p.add_argument("--duration", type=_positive_float("--duration"), help="record S x the device's rate frames (S seconds of device time when no frame is lost)")
+    p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="record S x the device's rate frames (S seconds of device time when no frame is lost)")
     p.add_argument("--calibration", help="calibration JSON: /derived is written as frames arrive")
     p.add_argument("--quiet", action="store_true", help="no status line")
     _add_publish(p)
@@ -112,17 +121,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file", metavar="FILE")
     p.add_argument("--calibration")
     p.add_argument("--follow", action="store_true", help="keep up with a file that is still being recorded")
-    p.add_argument("--speed", type=_positive_float("--speed"), default=1.0, help="playback speed, 0.1 .. 20 (default 1)")
+    p.add_argument("--speed", type=number_in("--speed", 0.1, 20.0), default=1.0, help="playback speed, 0.1 .. 20 (default 1)")
     p.add_argument("--paused", action="store_true", help="open at the first frame without playing")
     p.add_argument("--headless", action="store_true", help="no window: play through, printing a status line")
-    p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds")
+    p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds")
 
     p = sub.add_parser("health", help="per-channel wiring health")
     p.add_argument("--port", help="serial port; omit for the virtual finger")
     p.add_argument("--rig", help="rig file (TOML)")
     p.add_argument("--text", action="store_true", help="print the table in the terminal every second")
-    p.add_argument("--duration", type=_positive_float("--duration"), help="stop after S seconds")
-    p.add_argument("--window", type=_positive_float("--window"), default=2.0, metavar="S",
+    p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds")
+    p.add_argument("--window", type=number_in("--window", 0.1, 60.0, unit="s"), default=2.0, metavar="S",
                    help="seconds of frames judged at each refresh (default 2)")
     add_virtual_source_arguments(p)
 
@@ -133,7 +142,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("export", help="shape plot of one time of a recording to PNG or SVG")
     p.add_argument("file", metavar="FILE")
     p.add_argument("--out", required=True, metavar="IMAGE", help=".png or .svg")
-    p.add_argument("--time", type=float, default=None, metavar="S", help="device time in s (default: last frame)")
+    p.add_argument("--time", type=number_in("--time", -1e9, 1e9, unit="s"), default=None, metavar="S", help="device time in s (default: last frame)")
     p.add_argument("--calibration")
 
     from acquire.virtual.cli import add_virtual_device_arguments

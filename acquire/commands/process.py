@@ -24,45 +24,21 @@ from acquire.core.reconstruct import Reconstructor
 from acquire.store.recording import LIBVER, create_derived, open_recording
 from acquire.store.outputs import check_output
 from acquire.commands.common import (
-    CHUNK_FRAMES, PROGRESS_LOG_MIN_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, _Rows, _adc_bits, _warn, publish_output, recording_rate_hz,
+    CHUNK_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, _Rows, _adc_bits, _warn, publish_output, recording_rate_hz,
     recording_rig,
 )
 
 __all__ = ["process_recording", "process_command"]
 
 
-class _Progress:
-    """A progress bar on a terminal, or sparse progress lines in a log."""
+def _progress(*, total: int, enabled: bool, stream: TextIO, label: str):
+    """A progress bar (tqdm) on a terminal for long files; nothing in a log or for short files."""
+    from tqdm import tqdm
 
-    def __init__(self, *, total: int, enabled: bool, stream: TextIO, label: str):
-        self.total = max(1, int(total))
-        self.stream = stream
-        tty = enabled and bool(getattr(stream, "isatty", lambda: False)())
-        self.mode = None
-        if enabled and tty and total >= PROGRESS_MIN_FRAMES:
-            self.mode = "bar"
-        elif enabled and total >= PROGRESS_LOG_MIN_FRAMES:
-            self.mode = "lines"
-        self.label = label
-        self._next_line = 0.25
-
-    def update(self, done: int) -> None:
-        f = min(1.0, done / self.total)
-        if self.mode == "bar":
-            width = 30
-            fill = int(round(f * width))
-            self.stream.write(f"\r{self.label} [{'#' * fill}{'.' * (width - fill)}] {100 * f:5.1f} %")
-            self.stream.flush()
-        elif self.mode == "lines" and f >= self._next_line:
-            self.stream.write(f"tapcurve: {self.label}: {100 * f:.0f} % ({done} of {self.total} frames)\n")
-            self.stream.flush()
-            while self._next_line <= f:
-                self._next_line += 0.25
-
-    def close(self) -> None:
-        if self.mode == "bar":
-            self.stream.write("\n")
-            self.stream.flush()
+    tty = bool(getattr(stream, "isatty", lambda: False)())
+    show = enabled and tty and total >= PROGRESS_MIN_FRAMES
+    return tqdm(total=int(total), disable=not show, file=stream, desc=label, unit=" frames", unit_scale=True,
+                leave=False, mininterval=0.25)
 
 
 def _copy_attrs(src, dst, *, skip=()) -> None:
@@ -140,7 +116,7 @@ def process_recording(
             raise UserError(f"{out}: cannot create ({exc})") from None
         outside = np.zeros(rig.n_segments, dtype=np.int64)
         nan_frames = 0
-        bar = _Progress(total=n, enabled=progress, stream=progress_stream or sys.stderr, label=f"processing {src_path.name}")
+        bar = _progress(total=n, enabled=progress, stream=progress_stream or sys.stderr, label=f"processing {src_path.name}")
         try:
             with fo:
                 fi = rec.file
@@ -168,7 +144,7 @@ def process_recording(
                     xy[start:stop] = p.xy_m[:, :n_points]
                     outside += p.outside_calibration.sum(axis=0)
                     nan_frames += int(np.count_nonzero(~np.isfinite(p.curvature_per_m).all(axis=1)))
-                    bar.update(stop)
+                    bar.update(stop - bar.n)
                 a = g.attrs
                 a["filter"] = "zero-phase (forward-backward, offline)" if zero_phase else "causal (as live)"
                 a["spike_window"] = rig.spike_window
