@@ -13,7 +13,11 @@ pseudo-terminal; the window redraws at 60 Hz on Qt's ``offscreen`` platform
   itself, measured directly. Target: at most 0.5 core;
 - ``latency_ms``: host arrival of the newest frame to the end of the paint
   that showed it (median, 95th percentile, max). Target: at most two redraw
-  intervals (33 ms at 60 Hz).
+  intervals (33 ms at 60 Hz; ``latency_target_in_force_ms``: two intervals of
+  the rate the window settled on);
+- ``redraw_hz_in_force`` and ``redraw_status``: where the window's adaptive
+  redraw rate ended (it steps down from 60 Hz when the GUI thread is loaded
+  or its timer late; ``--fixed`` keeps 60 Hz to compare).
 """
 from __future__ import annotations
 
@@ -55,6 +59,7 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="short run (a check that the benchmark works)")
     ap.add_argument("--seconds", type=float, default=None, help="measuring time per phase")
     ap.add_argument("--redraw-hz", type=float, default=60.0)
+    ap.add_argument("--fixed", action="store_true", help="no adaptive redraw rate")
     args = ap.parse_args(argv)
     seconds = args.seconds or (1.5 if args.quick else 10.0)
 
@@ -75,7 +80,7 @@ def main(argv=None) -> int:
         time.sleep(0.5)  # let the stream settle
         acq_cpu, _, acq_wall = _cpu_over(seconds)
 
-        window = SensorWindow(source=session, redraw_hz=args.redraw_hz)
+        window = SensorWindow(source=session, redraw_hz=args.redraw_hz, adaptive=not args.fixed)
         window.resize(1366, 768)
         window.show()
 
@@ -91,6 +96,8 @@ def main(argv=None) -> int:
         drawn = len(window.drawn) - drawn0
         lat = np.array(window.draw_latency_s) * 1e3
         status = session.status()
+        rate_in_force = window.governor.rate_hz
+        redraw_status = window.governor.status() or "full rate"
         window.close()
     finally:
         session.stop()
@@ -118,11 +125,18 @@ def main(argv=None) -> int:
             "samples": int(lat.size),
         },
         "latency_target_ms": round(2 * interval_ms, 1),
+        "adaptive": not args.fixed,
+        "redraw_hz_in_force": rate_in_force,
+        "redraw_status": redraw_status,
+        "latency_target_in_force_ms": round(2000.0 / rate_in_force, 1),
+        "load_average": [round(v, 2) for v in os.getloadavg()],
         "qt_platform": os.environ.get("QT_QPA_PLATFORM"),
         "cpus": os.cpu_count(),
     }
     out["meets_cpu_target"] = out["gui_thread_cpu_cores"] <= 0.5 and out["window_cpu_cores"] <= 0.5
     out["meets_latency_target"] = bool(lat.size) and out["latency_ms"]["median"] <= 2 * interval_ms
+    out["meets_latency_target_in_force"] = (
+        bool(lat.size) and out["latency_ms"]["median"] <= out["latency_target_in_force_ms"])
     print(json.dumps(out, indent=1))
     del app
     return 0

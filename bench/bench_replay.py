@@ -10,7 +10,11 @@ times on Qt's ``offscreen`` platform:
   window (target < 2 s), and ``source_open_s`` for the file alone;
 - ``scrub_ms``: seeks to random times, request to the frame shown (the worker
   reads and filters the window of history before that time);
-- ``play_20x``: device seconds advanced per wall second at 20x.
+- ``play_20x``: device seconds advanced per wall second at 20x;
+- ``play``: at 1x and 10x (the speeds the window tests use), device seconds
+  per wall second from the frames drawn (slope of a straight-line fit,
+  ``numpy.polyfit``, the first 0.1 s of start-up left out) and the median
+  frames advanced per redraw (at 10x with a 60 Hz timer about 10 x 16.7).
 Figures are printed as JSON.
 """
 from __future__ import annotations
@@ -134,6 +138,30 @@ def main(argv=None) -> int:
             scrubs.append(time.perf_counter() - t)
         scrubs = np.array(scrubs) * 1e3
 
+        play = {}
+        for speed in (1.0, 10.0):
+            window.seek(10.0)
+            pump_until(lambda: abs(window.current.t_device_s - (src.t_first_s + 10.0)) < 0.0015)
+            window.set_speed(speed)
+            pump_until(lambda: src.wait_idle(0.001) and src.speed == speed)
+            window.drawn.clear()
+            t0 = time.monotonic()
+            src.play()
+            pump_until(lambda: time.monotonic() - t0 >= (1.0 if args.quick else 3.0))
+            src.pause()
+            drawn = list(window.drawn)
+            seqs = np.array([d[0] for d in drawn], dtype=float)
+            t_dev = np.array([d[1] for d in drawn])
+            wall = np.array([d[3] for d in drawn])
+            late = wall > wall[0] + 0.1
+            rate = float(np.polyfit(wall[late], t_dev[late], 1)[0]) if late.sum() >= 3 else float("nan")
+            play[f"{speed:g}x"] = {
+                "speed_reached": round(rate, 3),
+                "frames_per_redraw_median": float(np.median(np.diff(seqs))) if seqs.size > 1 else None,
+                "redraws": int(seqs.size),
+                "in_order": bool(np.all(np.diff(seqs) > 0)),
+            }
+
         window.seek(10.0)
         pump_until(lambda: abs(window.current.t_device_s - (src.t_first_s + 10.0)) < 0.0015)
         window.set_speed(20.0)
@@ -158,6 +186,7 @@ def main(argv=None) -> int:
         "open_target_s": 2.0,
         "scrub_ms": {"median": round(float(np.median(scrubs)), 1), "p95": round(float(np.percentile(scrubs, 95)), 1),
                      "max": round(float(scrubs.max()), 1), "n": int(scrubs.size)},
+        "play": play,
         "play_20x": {"speed_reached": round(speed, 2), "process_cpu_cores": round(play_cpu, 2)},
         "cpus": os.cpu_count(),
     }

@@ -27,16 +27,10 @@ __all__ = ["run_command", "display_available", "make_app", "exec_app"]
 
 
 def display_available() -> tuple[bool, str]:
-    """(available, why): whether a Qt window can be shown."""
-    plat = os.environ.get("QT_QPA_PLATFORM")
-    if plat:
-        return True, f"QT_QPA_PLATFORM={plat}"
-    if sys.platform == "darwin" or sys.platform.startswith("win"):
-        return True, sys.platform
-    for var in ("WAYLAND_DISPLAY", "DISPLAY"):
-        if os.environ.get(var):
-            return True, f"${var}={os.environ[var]}"
-    return False, "no display: $DISPLAY and $WAYLAND_DISPLAY are unset and QT_QPA_PLATFORM is not set"
+    """(usable, why): whether a Qt window can be shown, decided before Qt starts (see :mod:`display.screen`)."""
+    from display.screen import probe_display
+
+    return probe_display()
 
 
 #: Qt messages that say nothing to a user of tapcurve (the offscreen platform, a root session)
@@ -109,6 +103,11 @@ def _live(args, stop: StopSignals) -> int:
     calibration = load_calibration_for(args.calibration, rig)
     record = args.record
     vo = virtual_options_from_args(args, rig) if args.port is None else None
+    if calibration is None and vo is not None:
+        from acquire.virtual.builtin import BUILTIN_SEED, builtin_calibration
+
+        if vo.seed == BUILTIN_SEED:  # the simulated finger comes calibrated: the finger bends at once
+            calibration = builtin_calibration(rig)
     have_display, why = display_available()
     windowed = have_display and not args.headless
     if not windowed and not args.headless:
@@ -281,7 +280,8 @@ def _export(args, stop: StopSignals) -> int:
     app = make_app()  # held until the image is written: a collected QApplication takes Qt down with it
     from .export import export_recording_shape
 
-    out = export_recording_shape(path=args.file, out=args.out, time_s=args.time, calibration=args.calibration)
+    out = export_recording_shape(path=args.file, out=args.out, time_s=args.time, calibration=args.calibration,
+                                 force=args.force)
     _say(f"wrote {out}")
     del app
     return 0

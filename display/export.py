@@ -23,11 +23,15 @@ IMAGE_SUFFIXES = (".png", ".svg")
 
 
 def _check_out(path) -> Path:
-    p = Path(path)
+    from acquire.store.outputs import check_path_name, is_hdf5_file
+
+    p = check_path_name(path)
     if p.suffix.lower() not in IMAGE_SUFFIXES:
         raise UserError(f"{p}: the image must end in .png or .svg")
     if not p.parent.is_dir():
         raise UserError(f"{p}: folder {p.parent} does not exist")
+    if is_hdf5_file(p):
+        raise UserError(f"{p}: exists and is a recording; tapcurve never overwrites a recording")
     return p
 
 
@@ -121,7 +125,7 @@ class ShapeFigure(QtWidgets.QWidget):
         )
 
 
-def export_recording_shape(*, path, out, time_s: float | None = None, calibration=None) -> Path:
+def export_recording_shape(*, path, out, time_s: float | None = None, calibration=None, force: bool = False) -> Path:
     """Write the shape at device time ``time_s`` of a recording to ``out`` (.png or .svg).
 
     Parameters
@@ -142,7 +146,10 @@ def export_recording_shape(*, path, out, time_s: float | None = None, calibratio
     """
     from acquire.sources.replay import ReplaySource
 
-    out_p = _check_out(out)
+    from acquire.store.outputs import check_output
+
+    inputs = [path] + ([calibration] if isinstance(calibration, (str, Path)) else [])
+    out_p = _check_out(check_output(out, option="--out", what="image", inputs=inputs, force=force, can_force=True))
     src = ReplaySource(path=path, calibration=calibration, window_s=2.0).start()
     try:
         src.wait_ready()

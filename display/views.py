@@ -14,7 +14,7 @@ from PyQt5 import QtCore, QtGui, QtWidgets
 
 from .theme import COLOURS, series_colour
 
-__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline"]
+__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline", "RedrawGovernor", "redraw_ladder"]
 
 
 def _text_symbol(text: str) -> QtGui.QPainterPath:
@@ -225,6 +225,7 @@ class SegmentBars(pg.PlotWidget):
         self._neg_brush = pg.mkBrush(COLOURS["bend_neg"])
         self._res_brushes = [pg.mkBrush(series_colour(k)) for k in range(self.n)]
         self.mode = None
+        self._drawn_mode = None
         self.values = np.zeros(self.n)
 
     def set_curvature_mode(self, lo_per_m: float, hi_per_m: float) -> None:
@@ -246,6 +247,9 @@ class SegmentBars(pg.PlotWidget):
 
     def set_values(self, values: np.ndarray) -> None:
         v = np.nan_to_num(np.asarray(values, dtype=np.float64), nan=0.0)
+        if self._drawn_mode == self.mode and np.array_equal(v, self.values):
+            return  # nothing changed: no new picture
+        self._drawn_mode = self.mode
         self.values = v
         if self.mode == "curvature":
             brushes = [self._pos_brush if x >= 0 else self._neg_brush for x in v]
@@ -433,3 +437,123 @@ class Timeline(pg.PlotWidget):
         t = vb.mapSceneToView(event.scenePos()).x()
         t0, t1 = self._extent
         self.seek_requested.emit(float(min(max(t, t0), t1)))
+
+
+class RedrawGovernor:
+    """The redraw rate the window can afford: steps down when the GUI thread is loaded or late, back up when idle.
+
+    Pure bookkeeping, fed timings by the window (and by tests, synthetic
+    ones): at every redraw tick, the monotonic time and the GUI thread's CPU
+    time. Two signals, smoothed over the last ~10 ticks:
+
+    - *load*: GUI-thread CPU per wall second (cores). Above ``budget_cores``
+      the window would take more than its share: on a two-core laptop at
+      1 kHz, the reader, processing and recorder threads and the OS need the
+      rest (a 40 % budget; common practice, no source);
+    - *lateness*: how much later than its interval the timer fired, in
+      intervals. A timer that fires a quarter of an interval late, on
+      average, means the machine does not give the GUI thread the CPU when
+      asked (busy with others), so drawing more often only queues work.
+
+    Either over its limit for ``hold_down_s`` steps the rate down the ladder
+    (60 -> 30 -> 20 -> 15 Hz). Stepping up needs the load *predicted* at the
+    higher rate under ``up_share`` of the budget and the lateness under half
+    its limit, without a break for ``hold_up_s``: the gap between the
+    thresholds is the hysteresis that keeps the rate from flapping.
+
+    Parameters
+    ----------
+    rates_hz : sequence of float
+        The ladder, highest first.
+    budget_cores : float
+        GUI-thread load allowed, cores.
+    late_limit : float
+        Smoothed lateness, in intervals, that counts as busy.
+    up_share : float
+        Share of the budget the predicted load must stay under to step up.
+    hold_down_s, hold_up_s : float
+        Time since the last change before stepping down / up, s.
+    warmup_s : float
+        No step in the first seconds: the first paints fill caches and cost
+        more than the ones that follow.
+
+    Attributes
+    ----------
+    load_cores, lateness : float
+        The smoothed signals.
+    """
+
+    def __init__(self, *, rates_hz=(60.0, 30.0, 20.0, 15.0), budget_cores: float = 0.4,
+                 late_limit: float = 0.25, up_share: float = 0.6, hold_down_s: float = 1.0,
+                 hold_up_s: float = 4.0, warmup_s: float = 2.0):
+        self.rates_hz = tuple(float(r) for r in rates_hz)
+        self.budget_cores = float(budget_cores)
+        self.late_limit = float(late_limit)
+        self.up_share = float(up_share)
+        self.hold_down_s = float(hold_down_s)
+        self.hold_up_s = float(hold_up_s)
+        self.warmup_s = float(warmup_s)
+        self.level = 0
+        self.load_cores = 0.0
+        self.lateness = 0.0
+        self._last = None
+        self._changed_s = None
+        self._calm_s = None  # since when stepping up would be allowed
+
+    @property
+    def rate_hz(self) -> float:
+        return self.rates_hz[self.level]
+
+    @property
+    def interval_s(self) -> float:
+        return 1.0 / self.rate_hz
+
+    def status(self) -> str:
+        """Empty at the full rate, else e.g. ``redraw 30 Hz: machine busy``."""
+        return "" if self.level == 0 else f"redraw {self.rate_hz:g} Hz: machine busy"
+
+    def tick(self, *, now_s: float, cpu_s: float) -> bool:
+        """Account one redraw tick; True when the rate changed (read :attr:`rate_hz`)."""
+        if self._last is None:
+            self._last = (now_s, cpu_s)
+            self._changed_s = now_s + self.warmup_s - self.hold_down_s  # the first step-down after the warm-up
+            return False
+        wall = now_s - self._last[0]
+        busy = cpu_s - self._last[1]
+        self._last = (now_s, cpu_s)
+        if wall <= 0:
+            return False
+        alpha = 0.1  # ~10 ticks of memory
+        self.load_cores += alpha * (busy / wall - self.load_cores)
+        late = max(0.0, wall - self.interval_s) / self.interval_s
+        self.lateness += alpha * (late - self.lateness)
+        busy_now = self.load_cores > self.budget_cores or self.lateness > self.late_limit
+        if busy_now and self.level + 1 < len(self.rates_hz) and now_s - self._changed_s >= self.hold_down_s:
+            return self._step(+1, now_s)
+        if self.level > 0 and self._calm(now_s) and now_s - self._calm_s >= self.hold_up_s:
+            return self._step(-1, now_s)
+        return False
+
+    def _calm(self, now_s: float) -> bool:
+        predicted = self.load_cores * self.rates_hz[self.level - 1] / self.rate_hz
+        calm = predicted < self.up_share * self.budget_cores and self.lateness < 0.5 * self.late_limit
+        if not calm:
+            self._calm_s = None
+        elif self._calm_s is None:
+            self._calm_s = now_s
+        return calm
+
+    def _step(self, direction: int, now_s: float) -> bool:
+        old = self.rate_hz
+        self.level += direction
+        # the load scales with the rate; the lateness is measured afresh at the new interval
+        self.load_cores *= self.rate_hz / old
+        self.lateness = 0.0
+        self._changed_s = now_s
+        self._calm_s = None
+        return True
+
+
+def redraw_ladder(redraw_hz: float) -> tuple[float, ...]:
+    """The rates a window asked to redraw at ``redraw_hz`` may step down to: itself, then 30, 20, 15 Hz below it."""
+    return (float(redraw_hz),) + tuple(r for r in (30.0, 20.0, 15.0) if r < redraw_hz)

@@ -20,7 +20,7 @@ from acquire.errors import UserError
 from acquire.core.reconstruct import body_outline
 
 from .theme import COLOURS, STYLE_SHEET
-from .views import SegmentBars, ShapeView, Timeline, TraceView
+from .views import RedrawGovernor, SegmentBars, ShapeView, Timeline, TraceView, redraw_ladder
 
 __all__ = ["SensorWindow", "SAFETY_TEXT", "ABOUT_TEXT", "SPEEDS"]
 
@@ -47,6 +47,12 @@ def _fmt_bytes(n: int) -> str:
     return f"{n / 1e3:.0f} kB"
 
 
+def _set_text(widget, text: str) -> None:
+    # an unchanged text still costs a relayout when set
+    if widget.text() != text:
+        widget.setText(text)
+
+
 class SensorWindow(QtWidgets.QMainWindow):
     """Shape, segment bars, rolling traces, status and controls for one source.
 
@@ -55,9 +61,14 @@ class SensorWindow(QtWidgets.QMainWindow):
     source : LiveSession or ReplaySource
         Started (and, for a replay, ready).
     redraw_hz : float
-        Redraw timer rate (shape, bars).
+        Redraw timer rate (shape, bars) when the machine keeps up.
     traces_hz : float
         Highest redraw rate of the rolling traces.
+    adaptive : bool
+        Lower the redraw rate (to 30, 20, 15 Hz) while the GUI thread is loaded
+        or its timer late, and raise it again when it is not (see
+        :class:`display.views.RedrawGovernor`); the status line says so.
+        Acquisition and recording run on their own threads and never slow down.
 
     Attributes
     ----------
@@ -67,6 +78,8 @@ class SensorWindow(QtWidgets.QMainWindow):
         Frames drawn, newest last (tests and benchmarks).
     draw_latency_s : deque of float
         Host arrival of a frame to the end of the paint that showed it, s (live only).
+    governor : RedrawGovernor
+        Picks the redraw rate; ``governor.rate_hz`` is the rate in force.
 
     Signals
     -------
@@ -76,7 +89,8 @@ class SensorWindow(QtWidgets.QMainWindow):
 
     closed = QtCore.pyqtSignal()
 
-    def __init__(self, *, source, redraw_hz: float = 60.0, traces_hz: float = 30.0, parent=None):
+    def __init__(self, *, source, redraw_hz: float = 60.0, traces_hz: float = 30.0, adaptive: bool = True,
+                 parent=None):
         super().__init__(parent=parent)
         self.source = source
         self.live = bool(source.is_live)
@@ -94,6 +108,9 @@ class SensorWindow(QtWidgets.QMainWindow):
         self._trace_interval_s = 1.0 / max(traces_hz, 1e-3) - 0.002
         self._trace_pending = None
         self._trace_t = 0.0
+        self.governor = RedrawGovernor(rates_hz=redraw_ladder(redraw_hz))
+        self.adaptive = bool(adaptive)
+        self._shown_state = None  # (record, label) controls as last shown: restyled only on change
         self.setStyleSheet(STYLE_SHEET)
         name = self.rig.name or Path(self.rig.source).name
         what = "live" if self.live else f"replay — {Path(str(source.path)).name}"
@@ -111,7 +128,7 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.timer = QtCore.QTimer(self)
         self.timer.setTimerType(QtCore.Qt.PreciseTimer)
         self.timer.timeout.connect(self.redraw)
-        self.timer.start(max(1, int(round(1000.0 / redraw_hz))))
+        self.timer.start(self._interval_ms())
         self.status_timer = QtCore.QTimer(self)
         self.status_timer.timeout.connect(self.update_status)
         self.status_timer.start(250)
@@ -306,8 +323,22 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.tare_button.setEnabled(cal is not None)
 
     # -- drawing ----------------------------------------------------------------------------------------------
+    def _interval_ms(self) -> int:
+        return max(1, int(round(1000.0 / self.governor.rate_hz)))
+
+    def _govern(self) -> None:
+        # GUI-thread CPU and timer ticks decide the rate
+        if self.adaptive and self.governor.tick(now_s=time.monotonic(), cpu_s=time.thread_time()):
+            self.apply_rate()
+
+    def apply_rate(self) -> None:
+        """Run the redraw timer at the governor's rate and say so in the status line at once."""
+        self.timer.setInterval(self._interval_ms())
+        self.update_status()
+
     def redraw(self) -> None:
-        """Take the newest state and draw it (GUI thread, from the redraw timer)."""
+        """Take the newest state and draw what changed (GUI thread, from the redraw timer)."""
+        self._govern()
         self._configure_calibration()
         if self.paused:
             return
@@ -406,24 +437,30 @@ class SensorWindow(QtWidgets.QMainWindow):
                 parts.append("file was left unclosed: recovered")
         cal = st.get("calibration")
         parts.append(f"calibration: {Path(cal).name if cal else 'none'}")
+        if self.governor.status():
+            parts.append(self.governor.status())
         if self.paused:
             parts.append("VIEW PAUSED")
         return "  ·  ".join(parts)
 
     def update_status(self) -> None:
-        self.status_label.setText(self.status_text())
+        """Refresh the status line and controls; widgets are touched only where their text changed."""
+        _set_text(self.status_label, self.status_text())
         if self._notice_until and time.monotonic() > self._notice_until:
             self.notice_label.setText("")
             self.notice_label.setVisible(False)
             self._notice_until = 0.0
         if self.live:
-            rec = self.source.recording
-            self.record_button.setText("■ Stop recording" if rec else "● Record…")
-            self.record_button.setProperty("recording", "true" if rec else "false")
-            self.record_button.style().unpolish(self.record_button)
-            self.record_button.style().polish(self.record_button)
-            self.label_button.setEnabled(rec)
-            self.label_button.setText("End label [F2]" if self.source.open_label else "Start label [F2]")
+            rec = bool(self.source.recording)
+            state = (rec, bool(self.source.open_label))
+            if state != self._shown_state:  # re-polishing a style sheet costs a full restyle
+                self._shown_state = state
+                self.record_button.setText("■ Stop recording" if rec else "● Record…")
+                self.record_button.setProperty("recording", "true" if rec else "false")
+                self.record_button.style().unpolish(self.record_button)
+                self.record_button.style().polish(self.record_button)
+                self.label_button.setEnabled(rec)
+                self.label_button.setText("End label [F2]" if state[1] else "Start label [F2]")
         else:
             src = self.source
             self.timeline.set_extent(0.0, max(src.t_last_s - src.t_first_s, 1e-3))
@@ -441,8 +478,8 @@ class SensorWindow(QtWidgets.QMainWindow):
                         f"{lab.text}    {lab.t_start_s - src.t_first_s:.2f} – {lab.t_end_s - src.t_first_s:.2f} s")
                     item.setData(QtCore.Qt.UserRole, lab.t_start_s)
                     self.label_list.addItem(item)
-            self.play_button.setText("❚❚ Pause" if src.playing else "▶ Play")
-            self.time_label.setText(f"{src.position_s - src.t_first_s:.3f} s")
+            _set_text(self.play_button, "❚❚ Pause" if src.playing else "▶ Play")
+            _set_text(self.time_label, f"{src.position_s - src.t_first_s:.3f} s")
 
     # -- live controls ----------------------------------------------------------------------------------------
     def _record_clicked(self) -> None:

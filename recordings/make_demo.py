@@ -38,12 +38,13 @@ from acquire.link.reader import SerialReader  # noqa: E402
 from acquire.store.recorder import Recorder  # noqa: E402
 from acquire.rig import load_rig  # noqa: E402
 from acquire.virtual import VirtualFinger  # noqa: E402
+from acquire.virtual.builtin import BUILTIN_SEED  # noqa: E402
 
 RIG_PATH = REPO / "acquire" / "rigs" / "demo_finger.toml"
 RECORDING = "demo_grasp.h5"
 CALIBRATION = "demo_calibration.json"
 RATE_HZ = 1000.0
-SEED = 11
+SEED = BUILTIN_SEED  # the built-in calibration's finger: replay falls back to it
 SETTLE_S = 0.4  # between moving onto a jig and pressing the label button
 HOLD_S = 1.5
 MOVING_S = 12.0

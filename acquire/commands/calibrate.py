@@ -20,6 +20,7 @@ from typing import Sequence, TextIO
 import numpy as np
 
 from acquire.core.calibration import (
+    check_distinct_recordings,
     Calibration,
     CalibrationError,
     FitReport,
@@ -315,6 +316,7 @@ def calibrate_files(
                 "frames": n,
                 "holds": [x.label for x in i if x.used],
             })
+            check_distinct_recordings(recordings)  # the same file twice would count its holds twice
     if table is not None:
         seen = {i.label for i in infos}
         unused = [k for k in table if k not in seen]

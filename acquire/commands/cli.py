@@ -115,6 +115,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--calibration", required=True)
     p.add_argument("--out", required=True, metavar="OUT.h5")
     p.add_argument("--zero-phase", action="store_true", help="forward-backward filtering (offline only)")
+    p.add_argument("--dense-points", action="store_true",
+                   help="shape points every millimetre (default: only as dense as the calibrated bends need)")
+    p.add_argument("--derived-only", action="store_true",
+                   help="write only /derived, linking the raw data of FILE (keep FILE beside the output)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
     p = sub.add_parser("replay", help="the live window fed from a recording")
@@ -135,6 +139,13 @@ def build_parser() -> argparse.ArgumentParser:
                    help="seconds of frames judged at each refresh (default 2)")
     add_virtual_source_arguments(p)
 
+    p = sub.add_parser("ports", help="list the serial ports; with --probe, which ones answer as a tapcurve board")
+    p.add_argument("--probe", action="store_true",
+                   help="send each free port a hello request (ports another program has open are left alone)")
+    p.add_argument("--timeout", type=number_in("--timeout", 0.05, 10.0, unit="s"), default=1.0, metavar="S",
+                   help="how long each probed port has to answer (default 1 s)")
+    p.add_argument("ports", nargs="*", metavar="PORT", help="also list (and probe) these paths or URLs")
+
     p = sub.add_parser("inspect", help="summary of a recording")
     p.add_argument("file", metavar="FILE")
     p.add_argument("--json", action="store_true", help="machine-readable summary")
@@ -142,6 +153,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("export", help="shape plot of one time of a recording to PNG or SVG")
     p.add_argument("file", metavar="FILE")
     p.add_argument("--out", required=True, metavar="IMAGE", help=".png or .svg")
+    p.add_argument("--force", action="store_true", help="replace an existing image (never a recording)")
     p.add_argument("--time", type=number_in("--time", -1e9, 1e9, unit="s"), default=None, metavar="S", help="device time in s (default: last frame)")
     p.add_argument("--calibration")
 
@@ -183,6 +195,11 @@ def main(argv: list[str] | None = None, *, window_commands=None) -> int:
     except KeyboardInterrupt:
         print("tapcurve: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into a program that stopped reading (| head): not an error
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 def _cmd_record(args) -> int:
@@ -251,6 +268,21 @@ def _cmd_inspect(args) -> int:
     return 0
 
 
+def _cmd_ports(args) -> int:
+    from acquire.link.ports import list_ports
+
+    rows = list_ports(probe=args.probe, timeout_s=args.timeout, include=args.ports)
+    if not rows:
+        print("no serial ports found (a board on USB shows up as /dev/ttyACM* or /dev/ttyUSB*; "
+              "one behind a network bridge as socket://HOST:PORT, give it as PORT)")
+        return 0
+    width = max(len(r.device) for r in rows)
+    for r in rows:
+        detail = f" ({r.detail})" if r.detail else ""
+        print(f"{r.device:<{width}}  {r.status:<14}  {r.description}{detail}")
+    return 0
+
+
 def _cmd_virtual_device(args) -> int:
     from acquire.virtual.cli import run_virtual_device
 
@@ -280,6 +312,8 @@ def _cmd_process(args) -> int:
         out_path=args.out,
         zero_phase=args.zero_phase,
         progress=not args.quiet,
+        dense_points=args.dense_points,
+        derived_only=args.derived_only,
     )
 
 
@@ -296,6 +330,7 @@ _WINDOW_COMMANDS = None
 _HANDLERS = {
     "record": _cmd_record,
     "inspect": _cmd_inspect,
+    "ports": _cmd_ports,
     "virtual-device": _cmd_virtual_device,
     "calibrate": _cmd_calibrate,
     "tare": _cmd_tare,

@@ -422,7 +422,8 @@ class LowPassFilter:
         Returns
         -------
         ndarray of float64, shape (N, S)
-            New; NaN where the input is NaN.
+            New, owned by the caller (column-major for long inputs, as
+            ``scipy.signal.sosfilt`` along axis 0 gives); NaN where the input is NaN.
         """
         x = np.asarray(x, dtype=np.float64)
         if x.ndim != 2 or x.shape[1] != self.n_signals:

@@ -18,6 +18,7 @@ every frame with any failed check, out-of-range resistance included.
 """
 from __future__ import annotations
 
+import math
 import threading
 from dataclasses import dataclass
 from typing import Iterator
@@ -33,7 +34,7 @@ from acquire.core.reconstruct import Reconstructor
 from acquire.rig import Rig
 
 __all__ = [
-    "tare_calibration","Processed", "Pipeline", "process_arrays", "iter_processed"]
+    "tare_calibration", "shape_spacing_m", "SHAPE_TOLERANCE_M", "DENSE_SPACING_M","Processed", "Pipeline", "process_arrays", "iter_processed"]
 
 
 @dataclass
@@ -255,6 +256,34 @@ class Pipeline:
             outside_calibration=outside,
             chain=check,
         )
+
+
+#: shape points written to files may be this far (m) from the dense reconstruction, linearly interpolated
+SHAPE_TOLERANCE_M = 5e-5
+#: the densest spacing of shape points, m (also the live display's)
+DENSE_SPACING_M = 0.001
+#: the smooth reconstruction's curvature may exceed the largest segment mean by this factor between taps
+#: (a C1 spline through means; 1.5 covers the demo grasp with room, checked in the tests)
+_SPLINE_OVERSHOOT = 1.5
+
+
+def shape_spacing_m(calibration: Calibration | None, *, tolerance_m: float = SHAPE_TOLERANCE_M) -> float:
+    """Spacing of stored shape points so that linear interpolation stays within ``tolerance_m`` of the shape.
+
+    A chord of length h on a curve of curvature k is at most k h^2 / 8 from the
+    arc (the sagitta of a circular arc, standard geometry), so
+    h = sqrt(8 tol / k_max) with k_max the largest curvature the calibration
+    covers (its curvature range, times a margin for the spline between taps).
+    Never denser than :data:`DENSE_SPACING_M`; any thread.
+    """
+    if calibration is None:
+        return DENSE_SPACING_M
+    k = np.abs(np.r_[calibration.curvature_min_per_m, calibration.curvature_max_per_m])
+    k = k[np.isfinite(k)]
+    k_max = float(k.max()) * _SPLINE_OVERSHOOT if k.size else 0.0
+    if k_max <= 0:
+        return 0.05  # a straight calibration: points every 5 cm are exact; taps are always points
+    return max(DENSE_SPACING_M, math.sqrt(8.0 * tolerance_m / k_max))
 
 
 def tare_calibration(calibration: Calibration | None, resistance_ohm: np.ndarray) -> Calibration:

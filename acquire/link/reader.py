@@ -19,7 +19,6 @@ increasing and every row keeps one meaning.
 """
 from __future__ import annotations
 
-import errno
 import json
 import queue
 import threading
@@ -75,20 +74,10 @@ def open_port(port: str, *, timeout_s: float = READ_WINDOW_S) -> serial.SerialBa
     """
     try:
         return _open(port, timeout_s)
-    except serial.SerialException as exc:
-        text = str(exc)
-        err = getattr(exc, "errno", None)
-        if "://" in port:
-            raise PortError(f"port {port}: cannot connect ({text}; is the bridge running and reachable?)") from None
-        if err == errno.ENOENT or "No such file" in text:
-            raise PortError(f"port {port}: not found") from None
-        if "exclusively lock" in text or err in (errno.EBUSY, errno.EAGAIN):
-            raise PortError(f"port {port}: busy (another program has it open)") from None
-        if err == errno.EACCES or "Permission denied" in text:
-            raise PortError(f"port {port}: permission denied (is your user in the dialout group?)") from None
-        raise PortError(f"port {port}: cannot open ({text})") from None
-    except (OSError, ValueError) as exc:
-        raise PortError(f"port {port}: cannot open ({exc})") from None
+    except (serial.SerialException, OSError, ValueError) as exc:
+        from acquire.link.ports import describe_port_error
+
+        raise PortError(describe_port_error(port, exc)) from None
 
 
 def _is_int(value) -> bool:

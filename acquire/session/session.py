@@ -103,6 +103,9 @@ class Session:
         Allow a non-loopback ``publish`` address.
     virtual_options : VirtualOptions or None
         For the virtual finger (ignored with a port).
+    dense_points : bool
+        Write /derived shape points every millimetre instead of only as dense as the
+        calibrated curvature range needs (see :func:`acquire.core.pipeline.shape_spacing_m`).
 
     Raises
     ------
@@ -128,6 +131,7 @@ class Session:
         publish_rate_hz: float | None = None,
         allow_remote: bool = False,
         virtual_options=None,
+        dense_points: bool = False,
     ):
         from acquire.sources.virtual import VirtualOptions
 
@@ -143,6 +147,7 @@ class Session:
         self.publish_address = publish
         self.publish_rate_hz = publish_rate_hz
         self.allow_remote = bool(allow_remote)
+        self.dense_points = bool(dense_points)
         self.virtual_options = virtual_options or VirtualOptions()
         self.virtual = None
         self.reader = None
@@ -337,7 +342,11 @@ class Session:
             if cal is not None:
                 from acquire.core.pipeline import Pipeline
 
-                pipeline = Pipeline(rig=self.rig, calibration=cal, rate_hz=self.rate_hz, adc_bits=self.adc_bits)
+                from acquire.core.pipeline import DENSE_SPACING_M, shape_spacing_m
+
+                spacing_m = DENSE_SPACING_M if self.dense_points else shape_spacing_m(cal)
+                pipeline = Pipeline(rig=self.rig, calibration=cal, rate_hz=self.rate_hz, adc_bits=self.adc_bits,
+                                    spacing_m=spacing_m)
             rec = Recorder(
                 path=Path(path),
                 ring=self.reader.ring,

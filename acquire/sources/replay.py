@@ -282,6 +282,10 @@ class ReplaySource(Worker):
             from acquire.core.calibration import Calibration
 
             cal = Calibration.from_json(rec.calibration_json, source=f"{self.path}: calibration_json")
+        if cal is None:  # a recording of the built-in virtual finger replays with its built-in calibration
+            from acquire.virtual.builtin import builtin_calibration
+
+            cal = builtin_calibration(self.rig, hello=self.hello)
         self._raw = rec.file["raw"]
         self._update_extent()
         rate = self.hello.get("rate_hz")

@@ -24,7 +24,7 @@ from acquire.link.clock import ClockFit
 from acquire.errors import UserError
 from acquire.session.worker import Worker
 from acquire.link.frames import EventLog, FrameRing
-from acquire.store.recording import COUNTER_NAMES, EVENT_TEXT_BYTES, LIBVER, check_label_text, create_derived, create_layout
+from acquire.store.recording import COUNTER_NAMES, EVENT_TEXT_BYTES, LIBVER, check_label_text, create_derived, pack_xy, create_layout
 
 __all__ = ["Recorder"]
 
@@ -126,7 +126,6 @@ class Recorder(Worker):
         self._t0_host = 0.0
         self._finished = threading.Event()
         self._lock_fd: int | None = None
-        self._reserve_bytes: int | None = None
         self._t_dev0: float | None = None
         self._derived_points = 0
         self._clock = ClockFit()
@@ -264,25 +263,17 @@ class Recorder(Worker):
 
         A write that fails half way can leave HDF5 metadata pointing past the
         end of the file, so the recorder stops *before* that, with the file
-        closed cleanly. Room needed: twice the pending data plus one new chunk
-        for every growing dataset.
+        closed cleanly. Room needed: what the next flush can write, see
+        :func:`_flush_bytes`.
         """
-        if self._reserve_bytes is None:
-            reserve = 0
-            def add(_name, obj):
-                nonlocal reserve
-                if isinstance(obj, h5py.Dataset) and obj.chunks is not None:
-                    reserve += int(np.prod(obj.chunks)) * obj.dtype.itemsize
-            f.visititems(add)
-            self._reserve_bytes = reserve + (256 << 10)  # metadata growth
-        need = self._reserve_bytes + 2 * pending_frames * self._frame_bytes
+        need = _flush_bytes(f, pending_frames)
         size = self.path.stat().st_size
         soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
         if soft != resource.RLIM_INFINITY and size + need > soft:
             return f"the file size limit ({soft / 1e6:.2f} MB) is reached"
         st = os.statvfs(self.path.parent)
         free = st.f_bavail * st.f_frsize
-        if free < need + (8 << 20):
+        if free < need:
             return f"the disk is nearly full ({free / 1e6:.1f} MB free)"
         return None
 
@@ -312,7 +303,7 @@ class Recorder(Worker):
             if "derived" in f:
                 out = self.pipeline.process(block)
                 _append(f["derived"]["curvature"], np.asarray(out.curvature_per_m, dtype=np.float32))
-                _append(f["derived"]["xy"], np.asarray(out.xy_m[:, : self._derived_points], dtype=np.float32))
+                _append(f["derived"]["xy"], pack_xy(out.xy_m[:, : self._derived_points]))
             self.frames_written += n
             self._last_t_device_s = float(t_dev[-1])
             point = self._clock.add_batch(t_dev, t_host)
@@ -382,6 +373,38 @@ class Recorder(Worker):
         g = f["counters"]
         _append(g["t_host_s"], np.array([time.monotonic() - self._t0_host]))
         _append(g["values"], row)
+
+
+#: room for metadata a flush may add (B-tree nodes, heap growth), bytes (common practice, no source)
+_METADATA_BYTES = 64 << 10
+#: frames-per-flush datasets; the others get at most a row or a few per flush
+_FRAME_GROUPS = ("raw", "derived")
+
+
+def _flush_bytes(f: h5py.File, pending_frames: int) -> int:
+    """Most bytes the next flush can add to the file: every chunk it writes, whole and uncompressed.
+
+    For the per-frame datasets (/raw, /derived) that is the partly filled last
+    chunk (rewritten) and the new chunks ``pending_frames`` rows need; for the
+    others one chunk each; plus :data:`_METADATA_BYTES`.
+    """
+    total = _METADATA_BYTES
+
+    def add(name: str, obj) -> None:
+        nonlocal total
+        if not isinstance(obj, h5py.Dataset) or obj.chunks is None or obj.maxshape[0] is not None:
+            return
+        rows = obj.chunks[0]
+        chunk_bytes = int(np.prod(obj.chunks)) * obj.dtype.itemsize
+        if name.split("/")[0] in _FRAME_GROUPS:
+            n0 = obj.shape[0]
+            touched = -(-(n0 + pending_frames) // rows) - n0 // rows
+            total += max(1, touched) * chunk_bytes
+        else:
+            total += chunk_bytes
+
+    f.visititems(add)
+    return total
 
 
 class _NoRoom(Exception):

@@ -23,6 +23,7 @@ import h5py
 import numpy as np
 
 from acquire.about import software_version, utc_now_iso
+from acquire.core.labels import LABEL_BYTES, check_label_text
 from acquire.errors import UserError
 from acquire.link.counters import LINK_COUNTER_NAMES
 from firmware_protocol import DROP_CAUSES
@@ -41,13 +42,13 @@ __all__ = [
     "open_recording",
     "create_layout",
     "create_derived",
+    "pack_xy",
     "check_label_text",
     "software_version",
 ]
 
 LAYOUT = "tapcurve-recording"
 LAYOUT_VERSION = 1
-LABEL_BYTES = 128
 EVENT_TEXT_BYTES = 1024
 LIBVER = ("v110", "v110")
 #: columns of /counters/values, one row per flush
@@ -58,26 +59,21 @@ class RecordingError(UserError):
     """A file that is not a readable recording."""
 
 
-def check_label_text(text: str) -> bytes:
-    """UTF-8 bytes of a label, refusing what the fixed-length field cannot hold."""
-    data = text.encode("utf-8")
-    if not text.strip():
-        raise UserError("label is empty")
-    from acquire.core.calibration import parse_label
-
-    parse_label(text)  # a label that looks like a reference (radius=, curvature=) must be readable now
-    if len(data) > LABEL_BYTES:
-        raise UserError(f"label {text[:30]!r}... is {len(data)} bytes of UTF-8; labels hold at most {LABEL_BYTES}")
-    return data
-
-
 def _chunk_rows(row_bytes: int) -> int:
-    # about 64 KiB per chunk: large enough for fast appends, small enough for SWMR readers
-    return int(max(64, min(65536, 65536 // max(1, row_bytes))))
+    # about 16 KiB per chunk: a flush rewrites at most one partly filled chunk per dataset (the room
+    # the recorder keeps free before each flush), deflate still finds its runs, replay reads few chunks
+    return int(max(64, min(16384, 16384 // max(1, row_bytes))))
+
+
+#: compression of the large datasets: deflate (in every HDF5 build) after the byte shuffle, level 1
+#: (measured in bench/bench_size.py: shuffle halves the size of shape points again; higher levels
+#: gain a few per cent for several times the time)
+COMPRESSION = dict(compression="gzip", compression_opts=1, shuffle=True)
 
 
 def _growing(
-    group: h5py.Group, name: str, *, dtype, row_shape=(), units: str | None = None, chunk_rows: int | None = None
+    group: h5py.Group, name: str, *, dtype, row_shape=(), units: str | None = None, chunk_rows: int | None = None,
+    compress: bool = False,
 ) -> h5py.Dataset:
     row_bytes = int(np.dtype(dtype).itemsize * int(np.prod(row_shape, dtype=np.int64)))
     ds = group.create_dataset(
@@ -86,6 +82,7 @@ def _growing(
         maxshape=(None, *row_shape),
         dtype=dtype,
         chunks=(chunk_rows or _chunk_rows(row_bytes), *row_shape),
+        **(COMPRESSION if compress else {}),
     )
     if units:
         ds.attrs["units"] = units
@@ -115,12 +112,12 @@ def create_layout(
     if calibration_json is not None:
         a["calibration_json"] = calibration_json
     raw = f.create_group("raw")
-    adc = _growing(raw, "adc", dtype=np.uint16, row_shape=(n_channels,), units="ADC code")
+    adc = _growing(raw, "adc", dtype=np.uint16, row_shape=(n_channels,), units="ADC code", compress=True)
     adc.attrs["channels"] = json.dumps(list(channel_names))
-    _growing(raw, "seq", dtype=np.int64)
-    _growing(raw, "t_device_s", dtype=np.float64, units="s")
-    _growing(raw, "t_host_s", dtype=np.float64, units="s")
-    _growing(raw, "status", dtype=np.uint8)
+    _growing(raw, "seq", dtype=np.int64, compress=True)
+    _growing(raw, "t_device_s", dtype=np.float64, units="s", compress=True)
+    _growing(raw, "t_host_s", dtype=np.float64, units="s", compress=True)
+    _growing(raw, "status", dtype=np.uint8, compress=True)
     labels = f.create_group("labels")
     _growing(labels, "text", dtype=h5py.string_dtype("utf-8", LABEL_BYTES), chunk_rows=16)
     _growing(labels, "t_start_s", dtype=np.float64, units="s", chunk_rows=16)
@@ -141,8 +138,8 @@ def create_layout(
     _growing(clock, "fit_drift_ppm", dtype=np.float64, units="ppm", chunk_rows=256)
     _growing(clock, "fit_offset_s", dtype=np.float64, units="s", chunk_rows=256)
     counters = f.create_group("counters")
-    _growing(counters, "t_host_s", dtype=np.float64, units="s", chunk_rows=256)
-    values = _growing(counters, "values", dtype=np.int64, row_shape=(len(COUNTER_NAMES),), chunk_rows=256)
+    _growing(counters, "t_host_s", dtype=np.float64, units="s", chunk_rows=32)
+    values = _growing(counters, "values", dtype=np.int64, row_shape=(len(COUNTER_NAMES),), chunk_rows=32)
     values.attrs["names"] = json.dumps(list(COUNTER_NAMES))
     counters.attrs["about"] = "cumulative counters, one row per flush; the last row is the final count"
 
@@ -158,12 +155,32 @@ def create_derived(f: h5py.File, *, n_segments: int, s_m: np.ndarray, tap_index:
     tap_index = np.asarray(tap_index, dtype=np.int64)
     n_points = int(tap_index[-1]) + 1
     g = f.create_group("derived")
-    _growing(g, "curvature", dtype=np.float32, row_shape=(n_segments,), units="1/m")
+    _growing(g, "curvature", dtype=np.float32, row_shape=(n_segments,), units="1/m", compress=True)
     s = g.create_dataset("s_m", data=np.asarray(s_m, dtype=np.float64)[:n_points])
     s.attrs["units"] = "m"
     s.attrs["tap_index"] = tap_index  # s_m[tap_index[k]] is tap k; the last is the sensor's end
-    _growing(g, "xy", dtype=np.float32, row_shape=(n_points, 2), units="m")
+    xy = _growing(g, "xy", dtype=np.float32, row_shape=(n_points, 2), units="m", compress=True,
+                  chunk_rows=max(256, (256 << 10) // (8 * n_points)))  # ~256 KiB: deflate works on long runs
+    xy.attrs["mantissa_bits"] = XY_MANTISSA_BITS
     return n_points
+
+
+#: shape points keep this many of float32's 23 mantissa bits (relative precision 2^-14: under 4 um
+#: at 0.1 m, far inside the 0.05 mm the points are spaced for); the zeroed low bits compress
+XY_MANTISSA_BITS = 13
+
+
+def pack_xy(xy_m: np.ndarray) -> np.ndarray:
+    """Shape points as stored: float32 rounded to :data:`XY_MANTISSA_BITS` mantissa bits (new array).
+
+    Round to nearest (a carry into the exponent is still the nearest value);
+    NaN and inf pass unchanged. Pure; any thread.
+    """
+    a = np.ascontiguousarray(xy_m, dtype=np.float32)
+    drop = 23 - XY_MANTISSA_BITS
+    u = a.view(np.uint32)
+    rounded = ((u + np.uint32(1 << (drop - 1))) & np.uint32((0xFFFFFFFF << drop) & 0xFFFFFFFF)).view(np.float32)
+    return np.where(np.isfinite(a), rounded, a)
 
 
 @dataclass(frozen=True)

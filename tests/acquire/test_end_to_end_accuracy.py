@@ -25,7 +25,6 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import h5py
@@ -54,23 +53,17 @@ def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProces
                           timeout=timeout_s, cwd=REPO)
 
 
-def wait_frames(ring, n: int, *, timeout_s: float = 30.0) -> None:
-    """Wait (bounded) until ``n`` more frames have arrived in the ring."""
-    target = ring.written + n
-    deadline = time.monotonic() + timeout_s
-    while ring.written < target:
-        left = deadline - time.monotonic()
-        if left <= 0:
-            raise TimeoutError(f"only {ring.written} of {target} frames arrived")
-        ring.wait(ring.written, min(left, 0.5))
-
-
 def newest_time_s(ring) -> float:
     return float(ring.latest(1).t_device_s[0])
 
 
 @pytest.fixture(scope="module")
-def session(tmp_path_factory):
+def session(tmp_path_factory, wait_until):
+    def wait_frames(ring, n: int) -> None:
+        """Until ``n`` more frames have arrived in the ring (each check waits on the ring's condition)."""
+        target = ring.written + n
+        wait_until(lambda: ring.wait(target - 1, 0.05), timeout_s=60, what=f"{n} more frames (ring at {target})")
+
     d = tmp_path_factory.mktemp("e2e")
     rig = load_rig(RIG_PATH)
     dev = VirtualFinger(rig=rig, rate_hz=RATE_HZ, seed=7, hold="flat", time_scale=TIME_SCALE,

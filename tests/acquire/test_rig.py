@@ -132,7 +132,7 @@ tip_length_mm = 14.0
         ("offset = 0.0", "offset = 1e300", "offset must be -1e+09 .. 1e+09"),
         ("spike_window = 3", "spike_window = 100001", "spike_window must be 1 .. 101 frames"),
         ("spike_window = 3", "spike_window = 4", "spike_window must be odd"),
-        ("spike_window = 3", "spike_window = 0", "spike_window must be 1 .. 101"),
+        ("spike_window = 3", "spike_window = 0", "spike_window must be positive, 1 .. 101 frames"),
         ("spike_window = 3", "spike_window = 3.0", "spike_window must be a whole number"),
         ("lowpass_hz = 40.0", "lowpass_hz = 1e9", "lowpass_hz must be 0 .. 100000 Hz"),
         ("lowpass_hz = 40.0", "lowpass_hz = -1.0", "lowpass_hz must be 0 .. 100000 Hz"),

@@ -30,7 +30,7 @@ def _judge(qtbot, rig, faults, *, seed=0):
         w = HealthWindow(session=session, window_s=1.2, refresh_s=0.25)
         qtbot.addWidget(w)
         w.show()
-        qtbot.waitUntil(lambda: w.report is not None and w.report.frames >= 1150, timeout=10000)
+        qtbot.waitUntil(lambda: w.report is not None and w.report.frames >= 1150, timeout=30000)
         w.refresh()
         rows = w.row_texts()
         summary = w.summary.text()

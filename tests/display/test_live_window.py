@@ -179,3 +179,25 @@ def test_ctrl_c_leaves_a_complete_recording(tmp_path):
         t_end = float(f["labels/t_end_s"][0])
         assert t_end == pytest.approx(float(f["raw/t_device_s"][-1]))
         assert f["counters/values"].shape[0] >= 1
+
+
+def test_status_says_when_the_redraw_rate_is_lowered(gui, qtbot, rig, artifacts):
+    # The governor's rule itself is tested with synthetic timings in test_views.py; here the window
+    # follows it: the timer runs at the lowered rate and the status line says why.
+    with LiveSession(rig=rig, virtual_options=VirtualOptions(seed=2)) as session:
+        w = SensorWindow(source=session, adaptive=False)  # the rule is driven by hand below
+        qtbot.addWidget(w)
+        w.show()
+        qtbot.waitUntil(lambda: w.current is not None, timeout=10000)
+        assert "redraw" not in w.status_text() and w.timer.interval() == 17
+        t, cpu = 0.0, 0.0
+        while w.governor.rate_hz == 60.0:
+            t += w.governor.interval_s
+            cpu += 0.012  # 12 ms of GUI-thread CPU per redraw at 60 Hz: 0.72 core, over the budget
+            w.governor.tick(now_s=t, cpu_s=cpu)
+        w.apply_rate()
+        assert w.governor.rate_hz == 30.0 and w.timer.interval() == 33
+        assert "redraw 30 Hz: machine busy" in w.status_label.text()
+        w.resize(1366, 768)
+        qtbot.wait(50)
+        w.grab().save(str(artifacts / "live_window_redraw_lowered.png"))

@@ -1,12 +1,24 @@
 """Filters: Butterworth response, chunking invariance, spikes, NaN handling, zero-phase offline."""
 from __future__ import annotations
 
+import subprocess
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy import ndimage, signal
 
 from acquire.errors import UserError
-from acquire.core.filters import FilterChain, LowPassFilter, SpikeFilter, centered_median, filtfilt_zero_phase
+from acquire.core.filters import (
+    FilterChain,
+    LowPassFilter,
+    SpikeFilter,
+    butterworth_lowpass_sos,
+    centered_median,
+    filtfilt_zero_phase,
+    sos_steady_state,
+)
 from acquire.rig import load_rig
 
 RATE = 200.0
@@ -155,3 +167,77 @@ def test_reset_forgets_state():
     f.process(rng.normal(size=(37, 2)))
     f.reset()
     np.testing.assert_array_equal(f.process(x), a)
+
+
+# -- the numpy-only design and block filter, against scipy.signal (the reference library) ------------
+
+CUTOFF_FRACTIONS = (0.002, 0.01, 0.04, 0.1, 0.25, 0.4, 0.49)  # cut-off / sample rate
+
+
+@pytest.mark.parametrize("order", range(1, 9))
+def test_design_equals_scipy_butter(order):
+    # Reference: scipy.signal.butter(order, fc, fs=rate, output="sos"), the same sections in the same order.
+    for rate in (200.0, 1000.0, 4096.0):
+        for frac in CUTOFF_FRACTIONS:
+            ours = butterworth_lowpass_sos(order, cutoff_hz=frac * rate, rate_hz=rate)
+            ref = signal.butter(order, frac * rate, fs=rate, output="sos")
+            np.testing.assert_allclose(ours, ref, rtol=0, atol=1e-12, err_msg=f"{order=} {frac=} {rate=}")
+
+
+@pytest.mark.parametrize("order", [1, 2, 3, 4, 8])
+def test_steady_state_equals_scipy_sosfilt_zi(order):
+    for frac in CUTOFF_FRACTIONS:
+        sos = signal.butter(order, frac, fs=1.0, output="sos")
+        ref = signal.sosfilt_zi(sos)
+        np.testing.assert_allclose(sos_steady_state(sos), ref, rtol=1e-10, atol=1e-12 * np.abs(ref).max())
+
+
+def _sosfilt_reference(sos, x):
+    # scipy.signal.sosfilt along axis 0, started from the steady state of the first frame
+    zi = signal.sosfilt_zi(sos)[:, :, None] * x[0]
+    return signal.sosfilt(sos, x, axis=0, zi=zi)[0]
+
+
+@pytest.mark.parametrize("order", [1, 2, 3, 4, 6, 8])
+@pytest.mark.parametrize("frac", [0.005, 0.04, 0.2, 0.45])
+def test_block_filter_equals_scipy_sosfilt(order, frac):
+    # Reference: scipy.signal.sosfilt with zi. Long enough for the many-block path and a partial slab.
+    rng = np.random.default_rng(order)
+    x = 10000.0 + np.cumsum(rng.normal(size=(70001, 3)), axis=0)
+    f = LowPassFilter(3, cutoff_hz=frac * RATE, rate_hz=RATE, order=order)
+    y = f.process(x)
+    ref = _sosfilt_reference(f.sos, x)
+    scale = np.abs(ref).max()
+    np.testing.assert_allclose(y, ref, rtol=0, atol=1e-12 * scale)
+
+
+@pytest.mark.parametrize("order", [2, 5])
+def test_block_filter_is_chunk_invariant(order):
+    # Random chunkings from single frames to whole slabs agree with one call (and with scipy).
+    rng = np.random.default_rng(10 + order)
+    x = 5000.0 + np.cumsum(rng.normal(size=(20000, 4)), axis=0)
+    whole = LowPassFilter(4, cutoff_hz=12.0, rate_hz=RATE, order=order).process(x)
+    scale = np.abs(whole).max()
+    for max_chunk in (3, 25, 100, 5000):
+        f = LowPassFilter(4, cutoff_hz=12.0, rate_hz=RATE, order=order)
+        chunked = run_chunked(f, x, rng, max_chunk=max_chunk)
+        np.testing.assert_allclose(chunked, whole, rtol=0, atol=1e-12 * scale, err_msg=f"{max_chunk=}")
+    np.testing.assert_allclose(whole, _sosfilt_reference(signal.butter(order, 12.0, fs=RATE, output="sos"), x),
+                               rtol=0, atol=1e-12 * scale)
+
+
+def test_filter_path_imports_no_scipy():
+    # Start-up: the numeric core must not pay for importing scipy (about a second).
+    code = (
+        "import sys, numpy as np\n"
+        "import acquire.core.pipeline\n"
+        "from acquire.core.filters import FilterChain\n"
+        "from acquire.core.reconstruct import Reconstructor\n"
+        "FilterChain(3, rate_hz=1000.0, spike_window=3, cutoff_hz=40.0, order=4).process(np.ones((500, 3)))\n"
+        "Reconstructor([0.016] * 6, tip_length_m=0.01).shape_xy(np.zeros((2, 6)))\n"
+        "print(sorted(m for m in sys.modules if m.split('.')[0] == 'scipy'))\n"
+    )
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60,
+                         cwd=Path(__file__).resolve().parents[3])
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.strip() == "[]"

@@ -229,3 +229,20 @@ def test_body_outline_of_a_circle_is_two_concentric_circles():
     q = (straight.shape[1] - 1) // 2
     np.testing.assert_allclose(straight[0, :q, 1], 0.007)
     np.testing.assert_allclose(straight[0, q:2 * q, 1], -0.005)
+
+
+@pytest.mark.parametrize("n_knots", [2, 3, 4, 5, 7, 17])
+def test_not_a_knot_basis_equals_scipy_cubic_spline(n_knots):
+    # Reference: scipy.interpolate.CubicSpline(bc_type="not-a-knot") through the identity (each column
+    # is the spline through one unit value); values and slopes, inside and just beyond the ends.
+    from scipy.interpolate import CubicSpline
+
+    from acquire.core.reconstruct import not_a_knot_basis
+
+    rng = np.random.default_rng(n_knots)
+    knots = np.concatenate([[0.0], np.cumsum(rng.uniform(0.005, 0.03, n_knots - 1))])
+    s = np.linspace(-0.01, knots[-1] + 0.01, 401)
+    ref = CubicSpline(knots, np.eye(n_knots), axis=0, bc_type="not-a-knot")
+    np.testing.assert_allclose(not_a_knot_basis(knots, s), ref(s), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(not_a_knot_basis(knots, s, derivative=1) * knots[-1], ref(s, 1) * knots[-1],
+                               rtol=0, atol=1e-11)

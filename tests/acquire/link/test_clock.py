@@ -76,7 +76,7 @@ class DriftingBoard:
         os.close(self.slave)
 
 
-def test_drift_stored_in_recording(tmp_path):
+def test_drift_stored_in_recording(tmp_path, wait_until):
     board = DriftingBoard(ppm=3000.0)  # a poor clock: 3000 ppm slow (resonator, not a crystal)
     reader = SerialReader(port=board.path)
     reader.start()
@@ -85,13 +85,14 @@ def test_drift_stored_in_recording(tmp_path):
                    channel_names=[f"tap{k}" for k in range(6)])
     rec.start()
     try:
-        deadline = time.monotonic() + 30
-        while rec.frames_written < 6000 and time.monotonic() < deadline:
-            rec.wait_finished(0.05)  # waits on an event; returns early only if the recorder died
+        # 6 s at 1 kHz: enough clock points for the fit (a failed recorder ends the wait at once)
+        wait_until(lambda: rec.frames_written >= 6000 or rec.wait_finished(0), timeout_s=60,
+                   what="6000 frames recorded")
     finally:
         reader.stop()
         rec.stop()
         board.close()
+    assert rec.error is None
     with open_recording(out) as f:
         clock = f.clock()
     assert clock is not None and clock["points"] > 10

@@ -462,6 +462,49 @@ def test_cli_record_publishes(tmp_path):
                     proc.kill()
 
 
+def test_cli_live_headless_limits_the_stream_rate(tmp_path):
+    """`tapcurve live --headless --publish 127.0.0.1:0 --publish-rate-hz 10` on the built-in virtual finger
+    (1 kHz): a connected client gets 10 messages per second of device time, the unit the limit is defined in
+    (acquire/serve/publish.py, "Requests"; device time makes the check independent of the machine's load).
+    Without the option it gets every frame, 1 ms apart, so each check below can fail."""
+    env = dict(os.environ, PYTHONUNBUFFERED="1")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "display.cli", "live", "--headless", "--duration", "3",
+         "--publish", "127.0.0.1:0", "--publish-rate-hz", "10"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO, env=env,
+    )
+    client = None
+    try:
+        lines: list[str] = []
+        found = threading.Event()
+        threading.Thread(target=_stderr_lines, args=(proc, lines, found), daemon=True).start()
+        assert found.wait(60.0)
+        announce = [ln for ln in lines if "shape stream on" in ln]
+        assert announce, "".join(lines)
+        host, port_text = announce[0].split("shape stream on ")[1].split()[0].rsplit(":", 1)
+        client = LineClient(int(port_text), host=host)
+        with client.cond:  # the stream ends when the session does (after --duration)
+            assert client.cond.wait_for(lambda: client.eof, timeout=60.0)
+        assert proc.wait(30.0) == 0, "".join(lines)
+    finally:
+        if client is not None:
+            client.close()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+    msgs = client.messages
+    assert len(msgs) >= 5, len(msgs)  # connected for most of the 3 s
+    seq = np.array([m["seq"] for m in msgs])
+    t = np.array([m["t_device_s"] for m in msgs])
+    # 10 messages per device second: (n - 1) intervals over the device time they span (arithmetic)
+    assert (len(msgs) - 1) / (t[-1] - t[0]) == pytest.approx(10.0, rel=0.05)
+    assert np.diff(t).min() > 0.05  # never two messages within half a period
+    if msgs[-1]["counters"]["frames_lost"] == 0:
+        # nothing lost on the link: exactly every 100th frame of the 1 kHz device
+        assert (np.diff(seq) == 100).all(), np.diff(seq)
+    assert all(m["dropped"] == 0 for m in msgs)  # a reading client at 10 Hz loses nothing
+
+
 def test_calibration_loaded_mid_stream(ring, publisher_factory):
     """Started raw, then given a calibration (as the live window's "Calibration..." does): shapes appear
     from a block boundary on, and no message mixes the two."""

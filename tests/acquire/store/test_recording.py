@@ -130,7 +130,7 @@ WRITER = textwrap.dedent(
 )
 
 
-def test_killed_writer_file_recovers(tmp_path):
+def test_killed_writer_file_recovers(tmp_path, wait_until):
     path = tmp_path / "killed.h5"
     repo = str(__import__("pathlib").Path(__file__).resolve().parents[3])
     proc = subprocess.Popen(
@@ -141,13 +141,13 @@ def test_killed_writer_file_recovers(tmp_path):
         # while the writer lives, a reader opens it in SWMR mode without touching it
         with open_recording(path) as live:
             assert live.live
-            # wait (bounded) until a flush has put 3000 frames on disk
-            deadline = time.monotonic() + 10
-            while live.n_frames < 3000 and time.monotonic() < deadline:
-                time.sleep(0.02)
+
+            def on_disk() -> bool:
                 live.refresh()
+                return live.n_frames >= 3000
+
+            wait_until(on_disk, timeout_s=30, what="a flush to put 3000 frames on disk")
             flushed = live.n_frames
-        assert flushed >= 3000
     finally:
         os.kill(proc.pid, signal.SIGKILL)
         proc.wait(10)
