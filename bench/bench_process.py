@@ -173,7 +173,7 @@ def main(argv=None) -> dict:
         for r in range(repeats):
             out = tmp / f"out{r}.h5"
             t0 = time.perf_counter()
-            process_recording(src, calibration_path=cal_path, out_path=out)
+            process_recording(src, calibration_path=cal_path, out_path=out, dense_points=True)
             best = min(best, time.perf_counter() - t0)
         out_bytes = out.stat().st_size
 
@@ -198,7 +198,7 @@ def main(argv=None) -> dict:
             stored = f["derived/xy"][:n_loop]  # points along the sensor (the file leaves out the fingertip)
             d_xy = float(np.max(np.abs(stored - xy[:, : stored.shape[1]])))
     # the same work: equal to float32 rounding (single-precision trig on the library side)
-    if d_curv > 1e-3 or d_xy > 1e-6:
+    if d_curv > 1e-3 or d_xy > 5e-6:  # stored points keep 13 mantissa bits (acquire.store.recording.pack_xy)
         raise SystemExit(f"per-frame loop and process disagree: curvature {d_curv:g} 1/m, xy {d_xy:g} m")
     loop_per_frame = loop_s / n_loop
     result = {

@@ -53,27 +53,20 @@ the caller.
 """
 from __future__ import annotations
 
-import csv
 import dataclasses
 import hashlib
-import importlib.metadata
 import json
 import math
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
 from pathlib import Path
 from typing import Sequence
 
 import numpy as np
 
-from acquire.core.labels import MAX_CURVATURE_PER_M, LabelError, check_curvature, parse_label
+from acquire.core.labels import MAX_CURVATURE_PER_M, LabelError, parse_label
+from acquire.about import software_version, utc_now_iso
 from acquire.errors import UserError
 from acquire.rig import BOUNDS, MAX_CHANNELS, Rig
-
-try:  # Python 3.11+
-    import tomllib
-except ModuleNotFoundError:  # pragma: no cover - Python 3.10
-    import tomli as tomllib
 
 __all__ = [
     "CalibrationError",
@@ -110,186 +103,6 @@ class CalibrationError(UserError):
 # The label grammar lives in acquire.core.labels; parse_label and LabelError are
 # re-exported here for code that imports them from this module.
 
-
-def _entry(value, where: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float, str)):
-        raise CalibrationError(f"{where}: {value!r} is not a curvature")
-    text = value.strip() if isinstance(value, str) else None
-    if text is not None and text.lower() in ("nan", ""):
-        return math.nan
-    try:
-        k = float(value)
-    except ValueError:
-        try:
-            k = parse_label(text)
-        except LabelError as exc:
-            raise CalibrationError(f"{where}: {exc}") from None
-        if k is None:
-            raise CalibrationError(f"{where}: {value!r} is neither a number (1/m) nor a reference label")
-        return k
-    if math.isnan(k):
-        return k
-    try:
-        return check_curvature(k, what=where)
-    except LabelError as exc:
-        raise CalibrationError(str(exc)) from None
-
-
-def load_reference_table(path: str | Path) -> dict[str, list[float]]:
-    """Read a reference table (format in the module docstring).
-
-    Returns
-    -------
-    dict
-        Label -> list of per-segment curvatures, 1/m (NaN = not defined). A
-        one-element list means every segment.
-
-    Raises
-    ------
-    CalibrationError
-        Missing file, broken TOML/CSV or an unreadable entry (message names the
-        file and the label).
-    """
-    p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise CalibrationError(f"{p}: reference table not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise CalibrationError(f"{p}: cannot read reference table ({exc})") from None
-    table: dict[str, list[float]] = {}
-    if p.suffix.lower() == ".csv":
-        rows = [r for r in csv.reader(text.splitlines()) if r and not r[0].lstrip().startswith("#")]
-        if rows and rows[0][0].strip().lower() == "label":
-            rows = rows[1:]
-        for line, row in enumerate(rows, 1):
-            label = row[0].strip()
-            cells = [c for c in row[1:] if c.strip() != ""] if len(row) > 1 else []
-            if not label or not cells:
-                raise CalibrationError(f"{p}: row {line} needs a label and at least one curvature")
-            table[label] = [_entry(c, f"{p}: label {label!r}") for c in cells]
-        return table
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise CalibrationError(f"{p}: not valid TOML ({exc})") from None
-    refs = doc.get("references")
-    if not isinstance(refs, dict):
-        raise CalibrationError(f"{p}: missing table [references]")
-    for label, value in refs.items():
-        where = f"{p}: [references] {label!r}"
-        values = value if isinstance(value, list) else [value]
-        if not values:
-            raise CalibrationError(f"{where}: empty list")
-        table[label] = [_entry(v, where) for v in values]
-    return table
-
-
-def reference_for(label: str, *, n_segments: int, table: dict[str, list[float]] | None = None) -> np.ndarray | None:
-    """Per-segment reference curvature of a label, shape (S,) float64 1/m, or None.
-
-    The table (if given) is looked up first, then :func:`parse_label`.
-
-    Raises
-    ------
-    CalibrationError
-        The table entry has neither 1 nor ``n_segments`` values.
-    LabelError
-        See :func:`parse_label`.
-    """
-    if table is not None and label in table:
-        values = table[label]
-        if len(values) == 1:
-            return np.full(n_segments, float(values[0]))
-        if len(values) != n_segments:
-            raise CalibrationError(
-                f"reference table: label {label!r} has {len(values)} values, the rig has {n_segments} segments"
-            )
-        return np.asarray(values, dtype=np.float64)
-    k = parse_label(label)
-    return None if k is None else np.full(n_segments, k)
-
-
-# ----------------------------------------------------------------------------- steady part
-
-def steady_part(
-    t_s: np.ndarray,
-    values: np.ndarray,
-    t_start: float,
-    t_end: float,
-    *,
-    trim_s: float = 0.25,
-    window_s: float = 0.2,
-    std_factor: float = 3.0,
-) -> np.ndarray:
-    """Frames of a labelled interval where the sensor was holding still.
-
-    Rule: (1) keep frames with ``t_start + trim <= t <= t_end - trim``, where
-    ``trim = min(trim_s, 0.25 * (t_end - t_start))`` (people move the finger
-    into and out of the hold around the label's edges); (2) compute for every
-    signal the moving standard deviation over a centred window of ``window_s``
-    (at least 3 frames, shorter at the ends of the interval); (3) reject
-    frames where any signal's moving std exceeds ``std_factor`` times that
-    signal's median moving std within the interval (its noise level; plus a
-    floor of 1e-9 of the signal's size, for noiseless data); (4) reject frames
-    with a non-finite value. Slow creep passes, transients do not. If more
-    than half the interval is moving, the noise level is overestimated and
-    the rule keeps too much: label holds, not movements.
-
-    Parameters
-    ----------
-    t_s : array_like, shape (N,)
-        Frame times, s, increasing.
-    values : array_like, shape (N, S) or (N,)
-        Signals (e.g. segment resistances, ohm).
-    t_start, t_end : float
-        The labelled interval, s, same clock as ``t_s``.
-
-    Returns
-    -------
-    ndarray of bool, shape (N,)
-    """
-    t = np.asarray(t_s, dtype=np.float64)
-    v = np.asarray(values, dtype=np.float64)
-    if v.ndim == 1:
-        v = v[:, None]
-    mask = np.zeros(t.shape[0], dtype=bool)
-    dur = float(t_end) - float(t_start)
-    if not dur > 0:
-        return mask
-    trim = min(float(trim_s), 0.25 * dur)
-    idx = np.flatnonzero((t >= t_start + trim) & (t <= t_end - trim))
-    n = idx.size
-    if n == 0:
-        return mask
-    seg = v[idx]
-    finite = np.isfinite(seg).all(axis=1)
-    if n < 3:
-        mask[idx[finite]] = True
-        return mask
-    dt = float(np.median(np.diff(t[idx])))
-    w = 3 if not dt > 0 else max(3, int(round(window_s / dt)))
-    half = min(w // 2, (n - 1) // 2)
-    centre = np.nanmedian(seg, axis=0)
-    centre = np.where(np.isfinite(centre), centre, 0.0)
-    d = np.where(np.isfinite(seg), seg - centre, 0.0)  # centred: no cancellation in the variance
-    c1 = np.concatenate([np.zeros((1, d.shape[1])), np.cumsum(d, axis=0)])
-    c2 = np.concatenate([np.zeros((1, d.shape[1])), np.cumsum(d * d, axis=0)])
-    i = np.arange(n)
-    lo = np.maximum(i - half, 0)
-    hi = np.minimum(i + half + 1, n)
-    cnt = (hi - lo)[:, None]
-    mean = (c1[hi] - c1[lo]) / cnt
-    var = np.maximum((c2[hi] - c2[lo]) / cnt - mean * mean, 0.0)
-    mstd = np.sqrt(var)
-    level = np.median(mstd, axis=0)
-    floor = 1e-9 * np.abs(centre) + 1e-300
-    bad = (mstd > std_factor * level + floor).any(axis=1) | ~finite
-    mask[idx[~bad]] = True
-    return mask
-
-
-# ----------------------------------------------------------------------------- reports
 
 @dataclass
 class SegmentReport:
@@ -462,14 +275,6 @@ def check_distinct_recordings(recordings: Sequence[dict]) -> None:
 
 # ----------------------------------------------------------------------------- calibration
 
-def software_version() -> str:
-    """Installed tapcurve version, or ``unknown`` when running from a source tree."""
-    try:
-        return importlib.metadata.version("tapcurve")
-    except importlib.metadata.PackageNotFoundError:
-        return "unknown (not installed)"
-
-
 def file_sha256(path: str | Path) -> str:
     """Hex SHA-256 of a file's bytes (for calibration provenance)."""
     h = hashlib.sha256()
@@ -477,10 +282,6 @@ def file_sha256(path: str | Path) -> str:
         for block in iter(lambda: f.read(1 << 20), b""):
             h.update(block)
     return h.hexdigest()
-
-
-def _utc_now() -> str:
-    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
 def _poly(coef: np.ndarray, x: np.ndarray) -> np.ndarray:
@@ -649,7 +450,7 @@ class Calibration:
             raise CalibrationError(
                 f"{self.source}: cannot tare: segment {int(bad[0])} has no valid flat resistance ({r0[bad[0]]!r})"
             )
-        record = {"utc": _utc_now(), "r0_ohm_before": [float(v) for v in self.r0_ohm]}
+        record = {"utc": utc_now_iso(), "r0_ohm_before": [float(v) for v in self.r0_ohm]}
         return dataclasses.replace(self, r0_ohm=r0, tares=[*self.tares, record])
 
     def check_rig(self, rig: Rig) -> list[str]:
@@ -811,232 +612,6 @@ class Calibration:
 
 # ----------------------------------------------------------------------------- fitting
 
-@dataclass
-class Hold:
-    """Steady frames of one labelled hold.
-
-    Attributes
-    ----------
-    reference_per_m : ndarray, shape (S,)
-        Reference curvature of each segment, 1/m; NaN = unknown (ignored).
-    resistance_ohm : ndarray, shape (n, S)
-        Steady frames (see :func:`steady_part`).
-    label : str
-        For messages.
-    """
-
-    reference_per_m: np.ndarray
-    resistance_ohm: np.ndarray
-    label: str = ""
-
-
-def _monotone(coef: np.ndarray, x_edge: float) -> bool:
-    if x_edge == 0:
-        return bool(coef[0] > 0)
-    u = np.linspace(0.0, x_edge, 257)
-    return bool(np.all(_dpoly(coef[None, :], u[:, None])[:, 0] > 0))
-
-
-def _fit_side(x, kappa, *, degree, side, on_non_monotone, seg) -> tuple[list[float], int, list[str]]:
-    warnings: list[str] = []
-    n_distinct = np.unique(np.round(kappa, 9)).size
-    d = max(1, min(degree, n_distinct))
-    x_edge = float(x.max()) if side == "positive" else float(x.min())
-    if (side == "positive" and x_edge <= 0) or (side == "negative" and x_edge >= 0):
-        raise CalibrationError(
-            f"segment {seg}: holds with {side} curvature do not move the resistance the {side} way "
-            f"(positive curvature must raise it); check the label signs and the sensor's orientation"
-        )
-    # the data themselves: mean x per reference must rise with the reference
-    ks = np.unique(kappa)
-    xm = np.array([x[kappa == k].mean() for k in ks])
-    for i in np.flatnonzero(np.diff(xm) <= 0):
-        msg = (
-            f"{side} side: resistance does not rise from {ks[i]:+.2f} to {ks[i + 1]:+.2f} 1/m "
-            f"(x {xm[i]:+.4f} -> {xm[i + 1]:+.4f}); the data are not monotone"
-        )
-        if on_non_monotone == "refuse":
-            raise CalibrationError(f"segment {seg}: {msg}")
-        warnings.append(msg)
-    if n_distinct <= degree and len(x) > 0:
-        warnings.append(
-            f"{side} side: only {n_distinct} distinct reference curvature(s); "
-            f"degree {d} passes through them, so the residual says little"
-        )
-    while True:
-        a = x[:, None] ** np.arange(1, d + 1)
-        coef = np.linalg.lstsq(a, kappa, rcond=None)[0]
-        if _monotone(coef, x_edge):
-            return [float(c) for c in coef], d, warnings
-        if on_non_monotone == "refuse" or d == 1:
-            raise CalibrationError(
-                f"segment {seg}: the {side}-side fit (degree {d}) is not monotone over the holds; "
-                f"curvature would be ambiguous (check the holds and their labels)"
-            )
-        warnings.append(f"{side} side: degree {d} fit is not monotone; lowered to degree {d - 1}")
-        d -= 1
-
-
-def fit_calibration(
-    holds: Sequence[Hold | tuple],
-    *,
-    rig: Rig,
-    degree: int | tuple[int, int] = 2,
-    on_non_monotone: str = "lower",
-    recordings: Sequence[dict] = (),
-    min_holds_per_side: int = 2,
-) -> tuple[Calibration, FitReport]:
-    """Fit a calibration from holds (module docstring: model and rules).
-
-    Parameters
-    ----------
-    holds : sequence of Hold or (reference, resistance) tuples
-        ``reference`` is a number (uniform) or shape (S,), 1/m; ``resistance``
-        shape (n, S), ohm, steady frames only. At least one flat hold
-        (reference 0) per segment is required.
-    rig : Rig
-        The rig the recordings were made with.
-    degree : int or (int, int)
-        Highest polynomial degree per side (1..3 sensible); a pair gives the
-        positive and the negative side their own.
-    on_non_monotone : {"lower", "refuse"}
-        Lower the degree with a warning, or raise.
-    recordings : sequence of dict
-        Provenance, ``{"path": ..., "sha256": ...}`` each.
-    min_holds_per_side : int
-        Fewer bent holds than this on a side gives a warning.
-
-    Returns
-    -------
-    (Calibration, FitReport)
-
-    Raises
-    ------
-    CalibrationError
-        No flat hold for a segment, no bent hold at all, a wrong sign, a
-        refused non-monotone fit, or arrays of the wrong shape.
-    """
-    if on_non_monotone not in ("lower", "refuse"):
-        raise ValueError("on_non_monotone must be 'lower' or 'refuse'")
-    deg_pos, deg_neg = (degree, degree) if np.ndim(degree) == 0 else (degree[0], degree[1])
-    deg_pos, deg_neg = int(deg_pos), int(deg_neg)
-    if min(deg_pos, deg_neg) < 1:
-        raise ValueError("degree must be at least 1")
-    n_seg = rig.n_segments
-    refs, means, counts, labels = [], [], [], []
-    for i, h in enumerate(holds):
-        if not isinstance(h, Hold):
-            ref, res = h[0], h[1]
-            h = Hold(reference_per_m=ref, resistance_ohm=res, label=h[2] if len(h) > 2 else f"hold {i}")
-        ref = np.asarray(h.reference_per_m, dtype=np.float64)
-        ref = np.full(n_seg, float(ref)) if ref.ndim == 0 else ref
-        res = np.asarray(h.resistance_ohm, dtype=np.float64)
-        if res.ndim == 1 and n_seg == 1:
-            res = res[:, None]
-        if ref.shape != (n_seg,) or res.ndim != 2 or res.shape[1] != n_seg:
-            raise CalibrationError(
-                f"{h.label or f'hold {i}'}: expected {n_seg} segments, got reference {ref.shape} "
-                f"and resistance {res.shape}"
-            )
-        ok = np.isfinite(res)
-        cnt = ok.sum(axis=0)
-        s = np.where(ok, res, 0.0).sum(axis=0)
-        means.append(np.where(cnt > 0, s / np.maximum(cnt, 1), np.nan))
-        counts.append(cnt)
-        refs.append(ref)
-        labels.append(h.label or f"hold {i}")
-    if not refs:
-        raise CalibrationError("no holds to calibrate from")
-    refs_a = np.array(refs)  # (H, S)
-    means_a = np.array(means)
-    counts_a = np.array(counts)
-
-    r0 = np.empty(n_seg)
-    pos_c, neg_c, x_lo, x_hi, k_lo, k_hi = [], [], np.zeros(n_seg), np.zeros(n_seg), np.zeros(n_seg), np.zeros(n_seg)
-    seg_reports = []
-    for k in range(n_seg):
-        use = np.isfinite(refs_a[:, k]) & np.isfinite(means_a[:, k])
-        kap = refs_a[use, k]
-        rm = means_a[use, k]
-        flat = kap == 0
-        if not flat.any():
-            raise CalibrationError(f"segment {k}: no flat hold (label 'flat'); R0 cannot be found")
-        r0[k] = rm[flat].mean()
-        if not r0[k] > 0:
-            raise CalibrationError(f"segment {k}: flat resistance {r0[k]!r} ohm is not positive")
-        x = (rm - r0[k]) / r0[k]
-        warn: list[str] = []
-        used_labels = [labels[i] for i in np.flatnonzero(use)]
-        for i in np.flatnonzero(((kap > 0) & (x < 0)) | ((kap < 0) & (x > 0))):
-            warn.append(
-                f"hold {used_labels[i]!r} ({kap[i]:+.2f} 1/m) moved the resistance the wrong way "
-                f"(x = {x[i]:+.4f}); check its label"
-            )
-        sides = {}
-        for side, sel in (("positive", kap > 0), ("negative", kap < 0)):
-            if sel.sum() == 0:
-                sides[side] = None
-                continue
-            if sel.sum() < min_holds_per_side:
-                warn.append(f"{side} side: only {int(sel.sum())} hold(s)")
-            sides[side] = _fit_side(
-                x[sel], kap[sel], degree=deg_pos if side == "positive" else deg_neg, side=side,
-                on_non_monotone=on_non_monotone, seg=k,
-            )
-            warn.extend(sides[side][2])
-        if sides["positive"] is None and sides["negative"] is None:
-            raise CalibrationError(f"segment {k}: no bent holds, only flat ones; nothing to fit")
-        for side, other in (("positive", "negative"), ("negative", "positive")):
-            if sides[side] is None:
-                slope = sides[other][0][0]
-                sides[side] = ([slope], 0, [])
-                warn.append(f"no {side} holds: {side} bends use the {other} side's initial slope, uncalibrated")
-        pos_c.append(sides["positive"][0])
-        neg_c.append(sides["negative"][0])
-        x_hi[k] = max(0.0, float(x[kap > 0].max())) if (kap > 0).any() else 0.0
-        x_lo[k] = min(0.0, float(x[kap < 0].min())) if (kap < 0).any() else 0.0
-        k_hi[k] = max(0.0, float(kap.max()))
-        k_lo[k] = min(0.0, float(kap.min()))
-        model = np.where(
-            x >= 0, _poly(np.array([pos_c[-1]]), x[:, None])[:, 0], _poly(np.array([neg_c[-1]]), x[:, None])[:, 0]
-        )
-        rms = float(np.sqrt(np.mean((model - kap) ** 2)))
-        span = k_hi[k] - k_lo[k]
-        seg_reports.append(SegmentReport(
-            segment=k,
-            n_holds=int(use.sum()),
-            n_frames=int(counts_a[use, k].sum()),
-            rms_residual_per_m=rms,
-            rms_residual_percent=100.0 * rms / span if span > 0 else 0.0,
-            curvature_min_per_m=float(k_lo[k]),
-            curvature_max_per_m=float(k_hi[k]),
-            degree_positive=int(sides["positive"][1]),
-            degree_negative=int(sides["negative"][1]),
-            warnings=warn,
-        ))
-    report = FitReport(segments=seg_reports)
-    cal = Calibration(
-        r0_ohm=r0,
-        positive=pos_c,
-        negative=neg_c,
-        x_min=x_lo,
-        x_max=x_hi,
-        curvature_min_per_m=k_lo,
-        curvature_max_per_m=k_hi,
-        readout_kind=rig.readout_kind,
-        rig={
-            "name": rig.name, "source": rig.source, "sha256": rig.sha256, "n_segments": n_seg,
-            "r_ref_ohm": rig.r_ref_ohm, "segment_lengths_mm": [round(float(v) * 1e3, 6) for v in rig.segment_lengths_m],
-        },
-        recordings=[dict(r) for r in recordings],
-        created_utc=_utc_now(),
-        software_version=software_version(),
-        report=report,
-        source="fitted calibration",
-    )
-    return cal, report
-
-
 def load_for_rig(path, rig: Rig, *, warn=None):
     """Load a calibration file and check it against ``rig``; None for None.
 
@@ -1057,3 +632,8 @@ def load_for_rig(path, rig: Rig, *, warn=None):
     for note in cal.check_rig(rig):
         print(f"tapcurve: warning: {note}", file=warn or sys.stderr)
     return cal
+
+
+# the fit and the hold helpers live in their own modules; their names stay importable from here
+from acquire.core.calibration_fit import Hold, fit_calibration  # noqa: E402
+from acquire.core.holds import load_reference_table, reference_for, steady_part  # noqa: E402

@@ -1,22 +1,15 @@
 """Reference curvatures from filmed markers: marker CSV, arc geometry, batched fit.
 
-Markers glued along a finger are filmed; each camera frame gives their image
-positions. This module reads those positions (:func:`read_marker_csv`), models
-them as points on a planar curve of piecewise circular arcs
-(:func:`marker_positions`) and fits, for every frame at once, one curvature per
-segment plus the base pose (:func:`fit_marker_frames`). Time alignment with the
-recording lives in :mod:`acquire.core.align`.
+Filmed markers along a finger (:func:`read_marker_csv`) are modelled as points
+on a planar curve of piecewise circular arcs (:func:`marker_positions`) and
+fitted, all frames at once, with one curvature per segment plus the base pose
+(:func:`fit_marker_frames`). Clock alignment: :mod:`acquire.core.align`.
 
-Conventions: SI units inside (m, 1/m, rad, s); millimetres only in the CSV.
-Arc length ``s`` runs from the base (tap 0). The curve starts at the base
-point heading +x of the base frame; positive curvature turns toward +y; the
-+y normal is the left of the direction of travel. The base frame sits in the
-camera plane at ``pose = (x0_m, y0_m, phi_rad)``: a base-frame point ``p``
-is seen at ``(x0, y0) + R(phi) p``.
-
-Everything here is pure (no I/O except :func:`read_marker_csv` reading its
-one file, no globals, no caching) and may run on any thread. Returned arrays
-are new and owned by the caller; inputs are never modified or kept.
+SI units inside (m, 1/m, rad, s); mm only in the CSV. Arc length from the base
+(tap 0); the curve leaves the base heading +x, positive curvature turns toward
++y. A base-frame point p is seen at (x0, y0) + R(phi) p, pose = (x0_m, y0_m,
+phi_rad). All pure (only read_marker_csv reads its file), any thread; returned
+arrays are new and owned by the caller, inputs are never modified or kept.
 """
 from __future__ import annotations
 
@@ -27,22 +20,15 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = [
-    "MarkerError",
-    "MarkerTrack",
-    "MarkerFit",
-    "read_marker_csv",
-    "default_marker_arc_m",
-    "marker_positions",
-    "fit_marker_frames",
-]
+__all__ = ["MarkerError", "MarkerTrack", "MarkerFit", "read_marker_csv", "default_marker_arc_m",
+           "marker_positions", "fit_marker_frames"]
 
 MAX_ABS_MM = 1e6          # larger marker coordinates are absurd (1 km)
 _HUBER_C = 2.0            # Huber weight min(1, c sigma / r)   (common practice, no source)
 _TUKEY_C = 4.685          # Tukey biweight cut, in sigma       (common practice, no source)
 _HUBER_MAX_ITERS = 20     # IRLS phase 0 (Huber) limit per frame
 _TUKEY_ITERS = 1          # IRLS phase 1: Tukey reweighting steps, then weights fixed
-_CHI2_TOL = 1e-2          # stop when chi-square changes less (parameters move ~0.03 sd)
+_CHI2_TOL = 1e-2          # stop when chi-square changes less (parameters move < 0.1 sd)
 
 
 class MarkerError(ValueError):
@@ -56,10 +42,9 @@ class MarkerTrack:
     Attributes
     ----------
     t_s : ndarray, shape (F,)
-        Camera clock per frame, seconds, strictly increasing.
+        Camera clock per frame, s, strictly increasing.
     xy_m : ndarray, shape (F, K, 2)
-        Marker positions in the camera plane, metres; NaN where a marker was
-        not detected in that frame.
+        Marker positions in the camera plane, m; NaN where not detected.
     source : str
         Name of the file the track came from (for messages).
     """
@@ -68,12 +53,8 @@ class MarkerTrack:
     xy_m: np.ndarray
     source: str
 
-    @property
-    def n_markers(self) -> int:
-        return int(self.xy_m.shape[1])
 
-
-# --- CSV -------------------------------------------------------------------
+# --- CSV ---------------------------------------------------------------------
 
 def read_marker_csv(path, *, n_markers: int, name: str | None = None) -> MarkerTrack:
     """Read a marker CSV (``t_s,m0_x_mm,m0_y_mm,...``) strictly.
@@ -96,22 +77,16 @@ def read_marker_csv(path, *, n_markers: int, name: str | None = None) -> MarkerT
     Raises
     ------
     MarkerError
-        One line naming the file and the problem (with line and column where
-        relevant): unreadable or empty file, header only, wrong header or
-        marker count, a row of the wrong length, a non-numeric or non-finite
-        cell, one of a marker's two cells empty, t_s empty or not strictly
-        increasing, a marker missing in every frame, |value| > 1e6 mm.
-
-    Notes
-    -----
-    Reads the one file, whole, on the caller's thread; otherwise pure.
+        One line naming the file and the problem, with line and column where
+        relevant (empty file, header only, wrong header or marker count, bad
+        row length, non-numeric or non-finite cell, half-empty marker, t_s not
+        strictly increasing, marker missing in every frame, |value| > 1e6 mm).
     """
     n_markers = int(n_markers)
     if n_markers < 1:
         raise ValueError(f"n_markers must be >= 1, got {n_markers}")
     label = str(path) if name is None else str(name)
-    text = _read_text(path, label)
-    header, rows, lines = _split_rows(text, label)
+    header, rows, lines = _split_rows(_read_text(path, label), label)
     _check_header(header, n_markers, label)
     values, empty = _parse_cells(rows, lines, header, label)
     return _build_track(values, empty, lines, header, label)
@@ -123,11 +98,9 @@ def _fail(label: str, problem: str):
 
 def _read_text(path, label: str) -> str:
     try:
-        data = Path(path).read_bytes()
+        return Path(path).read_bytes().decode("utf-8-sig")
     except OSError as exc:
         _fail(label, f"cannot read the file ({exc.strerror or exc})")
-    try:
-        return data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         _fail(label, f"not UTF-8 text (byte {exc.start})")
 
@@ -141,11 +114,11 @@ def _split_rows(text: str, label: str):
                 continue                    # blank line
             if header is None:
                 header = [c.strip() for c in row]
-                continue
-            if len(row) != len(header):
+            elif len(row) != len(header):
                 _fail(label, f"line {reader.line_num} has {len(row)} cells, the header has {len(header)}")
-            rows.append(row)
-            lines.append(reader.line_num)
+            else:
+                rows.append(row)
+                lines.append(reader.line_num)
     except csv.Error as exc:
         _fail(label, f"line {reader.line_num}: not valid CSV ({exc})")
     if header is None:
@@ -163,9 +136,16 @@ def _check_header(header: list[str], n_markers: int, label: str) -> None:
         _fail(label, f"header has {ncol} columns, expected t_s and 2 per marker "
                      f"({1 + 2 * n_markers} for the rig's {n_markers} markers)")
     want = ["t_s"] + [f"m{k}_{a}_mm" for k in range(n_markers) for a in "xy"]
-    for col, (got, want) in enumerate(zip(header, want), start=1):
-        if got != want:
-            _fail(label, f"header column {col} is {got!r}, expected {want!r}")
+    for col, (got, exp) in enumerate(zip(header, want), start=1):
+        if got != exp:
+            _fail(label, f"header column {col} is {got!r}, expected {exp!r}")
+
+
+def _number(text: str) -> float:
+    """float() without its extras (1_000, non-ASCII digits); '' -> NaN."""
+    if "_" in text or not text.isascii():
+        raise ValueError(text)
+    return float(text) if text else np.nan
 
 
 def _parse_cells(rows, lines, header, label):
@@ -176,15 +156,11 @@ def _parse_cells(rows, lines, header, label):
         cells = [c.strip() for c in row]
         empty[i] = [not c for c in cells]
         try:
-            if any("_" in c or not c.isascii() for c in cells):
-                raise ValueError                 # float() would take 1_000 and non-ASCII digits
-            values[i] = [float(c) if c else np.nan for c in cells]
+            values[i] = [_number(c) for c in cells]
         except ValueError:
             for c, col in zip(cells, header):
                 try:
-                    if "_" in c or not c.isascii():
-                        raise ValueError
-                    float(c or "0")
+                    _number(c)
                 except ValueError:
                     _fail(label, f"line {lines[i]}, column {col}: {c[:40]!r} is not a number")
     return values, empty
@@ -198,9 +174,8 @@ def _build_track(values, empty, lines, header, label) -> MarkerTrack:
     t = values[:, 0]
     if empty[:, 0].any():
         _fail(label, f"line {lines[int(np.argmax(empty[:, 0]))]}: t_s is empty")
-    step = np.diff(t)
-    if (step <= 0).any():
-        i = int(np.argmax(step <= 0)) + 1
+    if (np.diff(t) <= 0).any():
+        i = int(np.argmax(np.diff(t) <= 0)) + 1
         _fail(label, f"line {lines[i]}: t_s {t[i]!r} is not after the previous {t[i - 1]!r} "
                      "(t_s must be strictly increasing)")
     xy = values[:, 1:]
@@ -223,7 +198,9 @@ def _build_track(values, empty, lines, header, label) -> MarkerTrack:
     return MarkerTrack(t_s=t.copy(), xy_m=xy.reshape(len(t), -1, 2), source=label)
 
 
-# --- geometry: piecewise circular arcs, points as complex x + iy -------------
+# --- geometry: piecewise circular arcs, points as complex x + iy --------------
+# Internally frames are on the LAST axis (k: (S, F), markers: (K, F)), so that
+# numpy's inner loops run over thousands of frames rather than 6 segments.
 
 @dataclass(frozen=True, eq=False)
 class _Layout:
@@ -237,55 +214,47 @@ class _Layout:
 
 def default_marker_arc_m(segment_lengths_m) -> np.ndarray:
     """Default marker arc lengths: one marker per tap, S+1 values in m (new array)."""
-    L = np.asarray(segment_lengths_m, dtype=float).ravel()
-    return np.concatenate([[0.0], np.cumsum(L)])
+    return np.concatenate([[0.0], np.cumsum(np.asarray(segment_lengths_m, dtype=float).ravel())])
 
 
 def _layout(segment_lengths_m, s_m, offset_m) -> _Layout:
     L = np.asarray(segment_lengths_m, dtype=float).ravel()
     if L.size == 0 or not np.all(np.isfinite(L)) or np.any(L <= 0):
         raise ValueError("segment_lengths_m must be a non-empty list of positive lengths")
-    s = default_marker_arc_m(L) if s_m is None else np.asarray(s_m, dtype=float).ravel()
-    o = np.zeros(s.shape) if offset_m is None else np.asarray(offset_m, dtype=float).ravel()
-    if s.size == 0 or o.shape != s.shape or not (np.all(np.isfinite(s)) and np.all(np.isfinite(o))):
-        raise ValueError("s_m and offset_m must be finite and of equal length (one per marker)")
-    if np.any(s < 0):
-        raise ValueError("s_m must be >= 0 (arc length from the base)")
     taps = default_marker_arc_m(L)
-    j = np.clip(np.searchsorted(taps, s, side="right") - 1, 0, L.size - 1)
+    s = taps if s_m is None else np.asarray(s_m, dtype=float).ravel()
+    o = np.zeros(s.shape) if offset_m is None else np.asarray(offset_m, dtype=float).ravel()
+    if s.size == 0 or o.shape != s.shape or not np.all(np.isfinite(np.r_[s, o])) or np.any(s < 0):
+        raise ValueError("s_m (>= 0) and offset_m must be finite, one value per marker each")
     near = np.abs(s[:, None] - taps[None, :]) <= 1e-12 * taps[-1]
     at_tap = near.any(axis=1)
+    j = np.clip(np.searchsorted(taps, s, side="right") - 1, 0, L.size - 1)
     j = np.where(at_tap, np.argmax(near, axis=1), j)
     ds = np.where(at_tap, 0.0, s - taps[j])
     return _Layout(L=L, j=j, ds=ds, s=s, o=o, inner=np.flatnonzero(~at_tap))
 
 
 def _turns(x):
-    """For turn angles x (rad): e^{ix/2}, sin(x/2)/(x/2) and cos, sin of x/2."""
+    """For turn angles x (rad): e^{ix/2}, sin(x/2)/(x/2), cos(x/2), sin(x/2)."""
     h = 0.5 * x
     c, s = np.cos(h), np.sin(h)
-    sinc = np.divide(s, h, out=np.ones_like(h), where=h != 0)
     u = np.empty(x.shape, dtype=complex)
     u.real, u.imag = c, s
-    return u, sinc, c, s
+    return u, np.divide(s, h, out=np.ones_like(h), where=h != 0), c, s
 
 
 def _g(x, sinc, c, s):
-    """(e^{ix} - 1 - ix)/(ix)^2, the integral weight of a chord over its arc, from _turns."""
+    """(e^{ix} - 1 - ix)/(ix)^2 from _turns: weight of a chord integrated over its arc."""
     small = np.abs(x) < 0.05
-    xs = np.where(small, 1.0, x)
-    x2 = x * x
+    xs, x2 = np.where(small, 1.0, x), x * x
     out = np.empty(x.shape, dtype=complex)
     out.real = 0.5 * sinc * sinc
     out.imag = np.where(small, x * (1 / 6 - x2 * (1 / 120 - x2 / 5040)), (xs - 2 * s * c) / (xs * xs))
     return out
 
 
-# Internally arrays keep frames on the LAST axis (k: (S, F), markers: (K, F)):
-# numpy's inner loops then run over thousands of frames, not over 6 segments.
-
 def _shape(k, lay: _Layout) -> dict:
-    """Base-frame taps and marker points (complex x + iy) for curvatures k (S, F).
+    """Base-frame taps and markers (complex) for curvatures k (S, F).
 
     Chords are ``l sinc(kl/2) e^{i(theta + kl/2)}``: exact as k -> 0.
     """
@@ -298,10 +267,10 @@ def _shape(k, lay: _Layout) -> dict:
     np.cumsum(L * sinc * E[:-1] * u, axis=0, out=P[1:])
     Ej = E[lay.j]
     p = P[lay.j] + 1j * lay.o[:, None] * Ej
-    jm, dm = lay.j[lay.inner], lay.ds[lay.inner][:, None]       # markers between taps
-    kd = k[jm] * dm
+    n, dm = lay.inner, lay.ds[lay.inner][:, None]               # markers between taps
+    kd = k[lay.j[n]] * dm
     um, sincm, cm, sm = _turns(kd)
-    p[lay.inner] += dm * sincm * Ej[lay.inner] * um + 1j * lay.o[lay.inner][:, None] * Ej[lay.inner] * (um * um - 1)
+    p[n] += Ej[n] * um * (dm * sincm + 1j * lay.o[n][:, None] * (um - np.conj(um)))
     return {"kl": kl, "seg": (sinc, c, s), "E": E, "P": P, "kd": kd, "mk": (sincm, cm, sm),
             "Ej": Ej, "p": p}
 
@@ -322,8 +291,7 @@ def marker_positions(curvature_per_m, *, segment_lengths_m, s_m=None, offset_m=N
     offset_m : array_like, shape (K,), optional
         Marker distance from the sensor line along the +y normal, m; default 0.
     pose : array_like, shape (F, 3), optional
-        ``(x0_m, y0_m, phi_rad)`` of the base frame in the camera plane per
-        frame; default the identity.
+        ``(x0_m, y0_m, phi_rad)`` of the base in the camera plane; default identity.
 
     Returns
     -------
@@ -364,7 +332,7 @@ def _dshape(lay: _Layout, sh: dict):
     return D
 
 
-# --- batched robust fit ----------------------------------------------------
+# --- batched robust fit --------------------------------------------------------
 
 @dataclass(frozen=True, eq=False)
 class MarkerFit:
@@ -373,22 +341,20 @@ class MarkerFit:
     Attributes
     ----------
     curvature_per_m : ndarray, shape (F, S)
-        Fitted curvature per segment, 1/m. NaN for frames that are not ``ok``
-        and for segments with no usable marker at or beyond their start.
+        Fitted curvature per segment, 1/m; NaN if the frame is not ``ok`` or
+        the segment has no usable marker beyond its start.
     pose : ndarray, shape (F, 3)
         ``(x0_m, y0_m, phi_rad)`` of the base in the camera plane; NaN if not ok.
     residual_m : ndarray, shape (F,)
-        Weighted RMS distance between observed and fitted markers, m (the
-        robust weights below; a rejected wild point does not count).
+        RMS distance between observed and fitted markers, m, weighted by
+        ``marker_weight`` (a rejected wild point does not count).
     curvature_sd_per_m : ndarray, shape (F, S)
-        Standard uncertainty of each curvature, 1/m, from the Gauss-Newton
-        covariance scaled by the frame's noise scale; ``inf`` where the data
-        cannot determine the segment to first order.
+        Standard uncertainty from the markers alone (Gauss-Newton covariance at
+        the frame's noise scale, no prior), 1/m; inf if not determined to first order.
     marker_weight : ndarray, shape (F, K)
-        Final robust weight of each marker in [0, 1]; 0 for missing or
-        rejected markers.
+        Final robust weight of each marker in [0, 1]; 0 if missing or rejected.
     ok : ndarray of bool, shape (F,)
-        Frame had enough markers (2 * observed >= S + 3) and the fit is finite.
+        Enough markers (2 * observed >= S + 3) and a finite, plausible fit.
     """
 
     curvature_per_m: np.ndarray
@@ -401,8 +367,8 @@ class MarkerFit:
 
 def fit_marker_frames(track: MarkerTrack, *, segment_lengths_m, s_m=None, offset_m=None,
                       noise_m: float = 0.3e-3, max_curvature_per_m: float = 250.0,
-                      roughness_scale_per_m: float | None = 100.0,
-                      max_iter: int = 40, chunk_frames: int = 8192) -> MarkerFit:
+                      roughness_scale_per_m: float | None = 100.0, max_iter: int = 40,
+                      chunk_frames: int = 8192) -> MarkerFit:
     """Fit per-frame segment curvatures and base pose to filmed markers.
 
     Parameters
@@ -412,21 +378,19 @@ def fit_marker_frames(track: MarkerTrack, *, segment_lengths_m, s_m=None, offset
     segment_lengths_m : array_like, shape (S,)
         Segment lengths, m.
     s_m, offset_m : array_like, shape (K,), optional
-        Marker arc lengths (strictly increasing, >= 0) and normal offsets, m;
-        defaults: the S+1 taps, offset 0.
+        Marker arc lengths (strictly increasing, >= 0) and offsets along the
+        +y normal, m; defaults: the S+1 taps, offset 0.
     noise_m : float
-        Marker position noise (per coordinate), m: the floor of the robust
-        scale and of ``curvature_sd_per_m``.
+        Marker position noise per coordinate, m: floor of the robust scale.
     max_curvature_per_m : float
-        Largest plausible |curvature|, 1/m: a wild point can be "explained" by
-        tiny loops; fits beyond this are retried without each marker, and
-        frames with no plausible fit are not ok.
+        Largest plausible |curvature|, 1/m; frames with no plausible fit are not ok.
     roughness_scale_per_m : float or None
-        Scale of the weak smoothness prior, 1/m (see Notes).
+        Scale of a weak prior on curvature differences between neighbouring
+        segments, 1/m (cost ``sum((dk / scale)^2)`` next to chi-square); ``None``: off.
     max_iter : int
-        Iteration limit of the Levenberg-Marquardt loop per frame.
+        Iteration limit per frame.
     chunk_frames : int
-        Frames solved together; bounds memory (about 3 kB per frame).
+        Frames solved together; bounds memory (a few kB per frame).
 
     Returns
     -------
@@ -435,50 +399,44 @@ def fit_marker_frames(track: MarkerTrack, *, segment_lengths_m, s_m=None, offset
 
     Notes
     -----
-    Unknowns per frame: S curvatures and the pose (x0, y0, phi). The pose is
-    eliminated in closed form (weighted 2-D Procrustes) and Levenberg-Marquardt
-    runs on the curvatures with the projected analytic Jacobian (variable
-    projection), all frames of a chunk at once: stacked S x S systems, frames
-    on the last axis. Start: the chord between two points of one arc points
-    along the tangent at mid-arc, so chord angles are linear in the
-    curvatures; their least-squares solution (markers whose chords are longer
-    than the arc allows left out) starts the iteration. Robustness: IRLS on
-    each marker's residual distance r with ``sigma = max(noise_m,
-    median(r) / 1.1774)`` per frame (1.1774 sigma is the median distance of
-    a 2-D normal): Huber weights ``min(1, 2 sigma / r)`` until nearly
-    converged, then Tukey biweights ``(1 - (r / (4.685 sigma))^2)^2``, 0
-    beyond (constants: common practice, no source); a rejected marker weighs
-    0. Each frame has its own damping, weights and stopping, so results do not
-    depend on chunking. A weak prior, curvature differences between
-    neighbouring segments of scale ``roughness_scale_per_m``, decides only
-    along directions the markers cannot see; ``None`` turns it off.
-
-    With markers only at the taps, a zigzag of alternating curvatures moves no
-    tap to first order (it only shortens chords), so curvatures near straight
-    poses are poorly determined: see ``curvature_sd_per_m``. Markers at
-    segment middles as well remove that.
+    Unknowns per frame: S curvatures and the pose. The pose is eliminated in
+    closed form (weighted 2-D Procrustes); Levenberg-Marquardt runs on the
+    curvatures with the projected analytic Jacobian (variable projection),
+    all frames of a chunk at once (stacked S x S systems), from a start where
+    chord angles (tangent at mid-chord on an arc) are linear in curvature.
+    Robust: IRLS on each marker's residual distance r, scale ``sigma =
+    max(noise_m, median(r) / 1.1774)`` per frame (median distance of a 2-D
+    normal), Huber weights ``min(1, 2 sigma/r)`` until nearly converged, then
+    Tukey ``(1 - (r/(4.685 sigma))^2)^2``, 0 beyond (common practice, no
+    source). Frames with a rejected marker or sharp-bend fits are refitted
+    leaving each marker out in turn; the least robust objective (Tukey rho +
+    prior) wins. Each frame has its own damping, weights and stopping, so
+    results do not depend on chunking. With markers only at the taps a zigzag
+    of alternating curvatures moves no tap to first order: near straight the
+    prior decides it (large ``curvature_sd_per_m``) and a wild point within
+    reach can pass for a sharp bend; markers at segment middles remove both.
     """
     lay = _layout(segment_lengths_m, s_m, offset_m)
     if np.any(np.diff(lay.s) <= 0):
         raise ValueError("s_m must be strictly increasing (markers ordered from the base)")
     xy = np.asarray(track.xy_m, dtype=float)
     if xy.ndim != 3 or xy.shape[1:] != (lay.s.size, 2):
-        raise ValueError(f"track has {xy.shape[1] if xy.ndim == 3 else '?'} markers, "
-                         f"the layout has {lay.s.size}")
+        raise ValueError(f"track markers {xy.shape[1:]} do not match the layout's {lay.s.size}")
     F, K, S = xy.shape[0], lay.s.size, lay.L.size
     out = {"k": np.full((F, S), np.nan), "pose": np.full((F, 3), np.nan),
            "res": np.full(F, np.nan), "sd": np.full((F, S), np.inf),
            "w": np.zeros((F, K)), "ok": np.zeros(F, dtype=bool)}
-    for a in range(0, F, max(1, int(chunk_frames))):
-        sl = slice(a, min(F, a + int(chunk_frames)))
-        _fit_chunk(xy[sl], lay, float(noise_m), float(max_curvature_per_m), int(max_iter),
-                   roughness_scale_per_m,
-                   {n: v[sl] for n, v in out.items()})
+    D = np.diff(np.eye(S), axis=0)                   # prior: sum((dk / scale)^2) -> k^T Pk k
+    tau = np.inf if roughness_scale_per_m is None else float(roughness_scale_per_m)
+    opts = (float(noise_m), float(max_curvature_per_m), int(max_iter), D.T @ D / tau**2)
+    step = max(1, int(chunk_frames))
+    for a in range(0, F, step):
+        _fit_chunk(xy[a:a + step], lay, *opts, {n: v[a:a + step] for n, v in out.items()})
     return MarkerFit(curvature_per_m=out["k"], pose=out["pose"], residual_m=out["res"],
                      curvature_sd_per_m=out["sd"], marker_weight=out["w"], ok=out["ok"])
 
 
-def _fit_chunk(xy, lay: _Layout, noise_m, k_max, max_iter, roughness, out) -> None:
+def _fit_chunk(xy, lay: _Layout, noise_m, k_max, max_iter, Pk, out) -> None:
     """Fit one chunk of frames; writes into the views in ``out``."""
     S = lay.L.size
     obs = (xy[..., 0] + 1j * xy[..., 1]).T                  # (K, F)
@@ -486,7 +444,7 @@ def _fit_chunk(xy, lay: _Layout, noise_m, k_max, max_iter, roughness, out) -> No
     ok = 2 * valid.sum(axis=0) >= S + 3
     if not ok.any():
         return
-    obs, valid, Pk = np.where(valid, obs, 0)[:, ok], valid[:, ok], _roughness(lay, roughness)
+    obs, valid = np.where(valid, obs, 0)[:, ok], valid[:, ok]
     k, w, sigma = _lm_irls(_start(obs, valid, lay), valid, obs, valid, lay, noise_m, max_iter, Pk)
     _leave_one_out(k, w, sigma, obs, valid, lay, noise_m, max_iter, Pk, k_max)
     sh = _shape(k, lay)
@@ -494,65 +452,56 @@ def _fit_chunk(xy, lay: _Layout, noise_m, k_max, max_iter, roughness, out) -> No
     res = np.sqrt((w * np.abs(r) ** 2).sum(axis=0) / np.maximum(w.sum(axis=0), 1e-300))
     sd = _curvature_sd(_normal(_reduced_jacobian(lay, sh, pc, w), w)[0], sigma)
     pose = np.stack([z0.real, z0.imag, np.angle(rot)], axis=1)
+    good = np.all(np.isfinite(pose), axis=1) & (np.abs(k) <= k_max).all(axis=0)
     k = np.where(_determined(w, lay), k, np.nan).T
-    good = np.all(np.isfinite(pose), axis=1) & (np.nanmax(np.abs(k), axis=1) <= k_max)
     idx = np.flatnonzero(ok)[good]
     out["k"][idx], out["pose"][idx], out["res"][idx] = k[good], pose[good], res[good]
     out["sd"][idx], out["w"][idx], out["ok"][idx] = sd[good], w.T[good], True
 
 
 def _leave_one_out(k, w, sigma, obs, valid, lay: _Layout, noise_m, max_iter, Pk, k_max) -> None:
-    """Refit doubtful frames once without each marker in turn; keep the best.
+    """Refit doubtful frames once without each marker in turn; keep the best candidate.
 
-    With few redundant markers a wild point can drag the robust fit far
-    enough that a good marker is rejected too, or be "explained" by sharp
-    bends. For frames with a rejected marker, |k| > k_max, or a prior cost
-    above that of one rejected marker, each observed marker is left out in
-    turn and the rest fitted by plain least squares. Among the robust fit
-    and the variants the one with the least robust objective (Tukey rho of
-    all observed markers at the frame's scale, plus the roughness prior;
-    implausible fits last) wins. Updates k, w, sigma in place.
+    Candidates are compared by Tukey rho of all observed markers at a common
+    scale (the smallest robust scale among them) plus the prior; implausible
+    ones (|k| > k_max) last. Updates k, w, sigma in place.
     """
     S = lay.L.size
     prior = np.einsum("if,ij,jf->f", k, Pk, k)
     flagged = np.flatnonzero(((w == 0) & valid).any(axis=0) | (np.abs(k) > k_max).any(axis=0)
                              | (prior > _TUKEY_C**2 / 6))
-    m_idx, f_idx = np.nonzero(valid[:, flagged])          # one variant per observed marker
-    fr = flagged[f_idx]
+    m_idx, f_idx = np.nonzero(valid[:, flagged])             # one candidate per observed marker
+    fr, slot = flagged[f_idx], f_idx
     vv = valid[:, fr].copy()
     vv[m_idx, np.arange(fr.size)] = False
     keep = 2 * vv.sum(axis=0) >= S + 3
-    fr, vv = fr[keep], vv[:, keep]
+    fr, slot, vv = fr[keep], slot[keep], vv[:, keep]
     if fr.size == 0:
         return
     kv, wv, _ = _lm_irls(_start(obs[:, fr], vv, lay), vv.astype(float), obs[:, fr], vv, lay,
                          noise_m, max_iter, Pk, robust=False)
     rv, sv = _distances(kv, wv, obs[:, fr], valid[:, fr], lay, noise_m)
-    r0, s0 = _distances(k[:, flagged], w[:, flagged], obs[:, flagged], valid[:, flagged], lay, noise_m)
-    scale = s0.copy()                                        # common scale: the best fit's
-    np.minimum.at(scale, np.searchsorted(flagged, fr), sv)
-    slot = np.searchsorted(flagged, fr)
+    r0, scale = _distances(k[:, flagged], w[:, flagged], obs[:, flagged], valid[:, flagged],
+                           lay, noise_m)
+    np.minimum.at(scale, slot, sv)
     cost = _objective(kv, rv, valid[:, fr], scale[slot], Pk, k_max)
     cost0 = _objective(k[:, flagged], r0, valid[:, flagged], scale, Pk, k_max)
-    order = np.lexsort((cost, fr))                           # best variant first per frame
+    order = np.lexsort((cost, fr))                            # best candidate first per frame
     first = order[np.r_[True, fr[order][1:] != fr[order][:-1]]]
-    better = cost[first] < cost0[slot[first]]
-    first = first[better]
+    first = first[cost[first] < cost0[slot[first]]]
     fb = fr[first]
     _, wt, st = _robust_weights(rv[:, first], valid[:, fb], noise_m, S + 3)
     k[:, fb], w[:, fb], sigma[fb] = kv[:, first], wt, st
 
 
 def _distances(k, w, obs, valid, lay: _Layout, noise_m):
-    """Residual distances of all markers with the pose fitted to weights w, and the
-    frame's robust scale max(noise_m, median / 1.1774) over the observed markers."""
+    """Distances of all markers to the fit (pose fitted with weights w) and the robust scale."""
     r = np.abs(_procrustes(_shape(k, lay)["p"], obs, w)[0])
     return r, _robust_weights(r, valid, noise_m, 0)[2]
 
 
 def _objective(k, r, valid, sigma, Pk, k_max):
-    """Tukey rho of the observed markers' distances r at scale sigma, plus the prior;
-    +inf where |k| > k_max (implausible)."""
+    """Tukey rho of observed distances r at scale sigma, plus the prior; inf if |k| > k_max."""
     u = r / sigma
     rho = _TUKEY_C**2 / 6 * (1 - np.clip(1 - (u / _TUKEY_C) ** 2, 0, None) ** 3)
     cost = (rho * valid).sum(axis=0) + np.einsum("if,ij,jf->f", k, Pk, k)
@@ -560,12 +509,8 @@ def _objective(k, r, valid, sigma, Pk, k_max):
 
 
 def _procrustes(p, obs, w):
-    """Best rigid placement of base-frame points p (K, F) on obs (weights w), closed form.
-
-    Returns the base-frame residual (model - observed; same lengths as in the
-    camera plane), the weighted-centred model points, the rotation e^{i phi}
-    and the base origin z0 = x0 + i y0.
-    """
+    """Best rigid placement of base-frame points p (K, F) on obs with weights w: the
+    base-frame residual (model - observed), centred model points, e^{i phi}, x0 + i y0."""
     ws = np.maximum(w.sum(axis=0), 1e-300)
     pm, om = (w * p).sum(axis=0) / ws, (w * obs).sum(axis=0) / ws
     pc, oc = p - pm, obs - om
@@ -576,16 +521,11 @@ def _procrustes(p, obs, w):
 
 
 def _reduced_jacobian(lay: _Layout, sh, pc, w):
-    """Jacobian of the Procrustes residual w.r.t. k, (2K, S, F), rows x then y.
-
-    Variable projection: the pose columns (translation, rotation) are
-    projected out in the weighted metric, so Gauss-Newton on k alone takes
-    the same step as on (k, pose).
-    """
+    """Jacobian of the Procrustes residual w.r.t. k, (2K, S, F): variable projection,
+    the pose columns projected out in the weighted metric (same GN step as on k, pose)."""
     D = _dshape(lay, sh)
-    K = w.shape[0]
+    K, wk = w.shape[0], w[:, None, :]
     ws = np.maximum(w.sum(axis=0), 1e-300)
-    wk = w[:, None, :]
     Dx, Dy = D[:K], D[K:]
     Dx -= (wk * Dx).sum(axis=0) / ws
     Dy -= (wk * Dy).sum(axis=0) / ws
@@ -609,62 +549,45 @@ def _normal(J, wn, r=None):
     return A, np.einsum("maf,mf->af", Jw, np.concatenate([r.real, r.imag], axis=0))
 
 
-def _neighbour_index(valid):
-    """Index of the next and previous valid marker per (marker, frame); K / -1 if none."""
-    K, F = valid.shape
-    ar = np.broadcast_to(np.arange(K)[:, None], (K, F))
-    nxt = np.minimum.accumulate(np.where(valid, ar, K)[::-1], axis=0)[::-1]
-    prv = np.maximum.accumulate(np.where(valid, ar, -1), axis=0)
-    nxt = np.concatenate([nxt[1:], np.full((1, F), K)], axis=0)
-    prv = np.concatenate([np.full((1, F), -1), prv[:-1]], axis=0)
-    return nxt, prv
-
-
-def _chords(obs, valid):
-    """Chord from each valid marker to the next valid one: vector, target index, mask."""
-    K = obs.shape[0]
-    nxt, prv = _neighbour_index(valid)
-    has = valid & (nxt < K)
-    tgt = np.minimum(nxt, K - 1)
-    vec = np.where(has, np.take_along_axis(obs, tgt, axis=0) - obs, 0)
-    return vec, tgt, has, prv
-
-
 def _start(obs, valid, lay: _Layout):
-    """Closed-form start: curvatures (S, F) from chord headings.
+    """Closed-form start, curvatures (S, F), from the chords between consecutive markers.
 
-    The chord between two points of one circular arc points along the
-    tangent at mid-arc, so the (unwrapped) chord angles are linear in the
-    base angle and the curvatures; a weak smoothness prior picks the
-    smoothest solution where that system is short of one equation.
+    A chord of one circular arc points along the tangent at mid-arc, so the
+    unwrapped chord angles are linear in the base angle and the curvatures;
+    a weak smoothness prior picks the smoothest solution where the system is
+    short of one equation (markers only at taps).
     """
     K, F = obs.shape
     S, L = lay.L.size, lay.L
-    vec, tgt, has, prv = _chords(obs, valid)
-    unit = np.where(has, vec / np.where(has, np.abs(vec), 1), 1)
-    prev_unit = np.take_along_axis(unit, np.maximum(prv, 0), axis=0)
-    head = np.cumsum(np.where(has & (prv >= 0), np.angle(unit * np.conj(prev_unit)), 0.0), axis=0)
+    ar = np.broadcast_to(np.arange(K)[:, None], (K, F))
+    nxt = np.minimum.accumulate(np.where(valid, ar, K)[::-1], axis=0)[::-1]
+    nxt = np.concatenate([nxt[1:], np.full((1, F), K)], axis=0)       # next valid marker
+    prv = np.maximum.accumulate(np.where(valid, ar, -1), axis=0)
+    prv = np.concatenate([np.full((1, F), -1), prv[:-1]], axis=0)     # previous valid marker
+    has, tgt = valid & (nxt < K), np.minimum(nxt, K - 1)
+    vec = np.where(has, np.take_along_axis(obs, tgt, axis=0) - obs, 1)
+    unit = vec / np.maximum(np.abs(vec), 1e-300)
+    turn = np.angle(unit * np.conj(np.take_along_axis(unit, np.maximum(prv, 0), axis=0)))
+    head = np.cumsum(np.where(has & (prv >= 0), turn, 0.0), axis=0)
     starts = np.concatenate([[0.0], np.cumsum(L)[:-1]])
     mid = 0.5 * (lay.s[:, None] + lay.s[tgt])
-    X = np.concatenate([np.ones((K, 1, F)), np.clip(mid[:, None] - starts[None, :, None], 0,
-                                                    L[None, :, None])], axis=1)
+    X = np.concatenate([np.ones((K, 1, F)),
+                        np.clip(mid[:, None] - starts[None, :, None], 0, L[None, :, None])], axis=1)
     Xw = X * has[:, None]
     A = np.einsum("kif,kjf->ijf", Xw, X)
-    b = np.einsum("kif,kf->if", Xw, head)
     Dm = np.diff(np.eye(S), axis=0) * L.mean()
     A[1:, 1:] += (1e-6 * Dm.T @ Dm + 1e-9 * np.diag(L**2))[..., None]
     A[0, 0] += 1e-9
-    return _solve_spd(A, b)[1:]
+    return _solve_spd(A, np.einsum("kif,kf->if", Xw, head))[1:]
 
 
 def _robust_weights(r, valid, noise_m, n_unknowns: int):
     """IRLS weights from marker residual distances r (K, F): (huber, tukey, sigma).
 
-    Tukey weights fall back to Huber for a frame where they would leave fewer
+    Tukey weights fall back to Huber in a frame where they would leave fewer
     observations than unknowns.
     """
-    K = r.shape[0]
-    n = valid.sum(axis=0)
+    K, n = r.shape[0], valid.sum(axis=0)
     srt = np.sort(np.where(valid, r, np.inf), axis=0)
     lo = np.take_along_axis(srt, np.clip((n - 1) // 2, 0, K - 1)[None], axis=0)[0]
     hi = np.take_along_axis(srt, np.clip(n // 2, 0, K - 1)[None], axis=0)[0]
@@ -672,17 +595,7 @@ def _robust_weights(r, valid, noise_m, n_unknowns: int):
     u = r / sigma
     huber = np.minimum(1.0, _HUBER_C / np.maximum(u, 1e-300)) * valid
     biw = np.where(u < _TUKEY_C, (1 - (u / _TUKEY_C) ** 2) ** 2, 0.0) * valid
-    enough = 2 * (biw > 0).sum(axis=0) >= n_unknowns
-    return huber, np.where(enough, biw, huber), sigma
-
-
-def _roughness(lay: _Layout, roughness_scale_per_m):
-    """Prior matrix on curvatures (S, S): sum of (dk / scale)^2 over neighbouring segments."""
-    S = lay.L.size
-    if roughness_scale_per_m is None or not np.isfinite(roughness_scale_per_m) or S < 2:
-        return np.zeros((S, S))
-    D = np.diff(np.eye(S), axis=0)
-    return D.T @ D / float(roughness_scale_per_m) ** 2
+    return huber, np.where(2 * (biw > 0).sum(axis=0) >= n_unknowns, biw, huber), sigma
 
 
 def _chi2(r, wn, k, Pk):
@@ -703,18 +616,16 @@ def _put(sh: dict, idx, new: dict, sel) -> None:
 def _lm_irls(k, w0, obs, valid, lay: _Layout, noise_m, max_iter, Pk, *, robust=True):
     """Levenberg-Marquardt on k (S, F) with IRLS weights, per frame, batched.
 
-    Per frame: phase 0 iterates with Huber weights until nearly converged;
-    phase 1 reweights with Tukey weights for a few iterations, then keeps
-    them fixed until converged (``robust=False``: weights ``w0`` throughout).
-    A frame that is done is no longer touched. Returns k, the final weights
-    (K, F) and the robust scale sigma (F,).
+    Per frame: Huber weights until nearly converged, then Tukey weights, then
+    fixed until converged (``robust=False``: ``w0`` throughout); a frame that
+    is done is no longer touched. Returns k, weights (K, F), robust scale (F,).
     """
     S, F = k.shape
     Ltot = float(lay.L.sum())
     Ps = (Pk / Ltot**2)[..., None]                     # prior for scaled k (k * Ltot)
     lam, sigma, w = np.full(F, 1e-6), np.full(F, noise_m), w0.copy()
     phase, count = np.full(F, 0 if robust else 1), np.full(F, 0 if robust else _TUKEY_ITERS)
-    active = np.ones(F, dtype=bool)
+    active, diag = np.ones(F, dtype=bool), (np.arange(S), np.arange(S))
     sh = _shape(k, lay)                                 # state: shape and residual at k
     r_cur = _procrustes(sh["p"], obs, w)[0]
     for _ in range(max_iter):
@@ -724,16 +635,14 @@ def _lm_irls(k, w0, obs, valid, lay: _Layout, noise_m, max_iter, Pk, *, robust=T
         ka, oa, va, ph, sha = k[:, idx], obs[:, idx], valid[:, idx], phase[idx], _take(sh, idx)
         wh, wb, st = _robust_weights(np.abs(r_cur[:, idx]), va, noise_m, S + 3)
         reweight = (ph == 0) | (count[idx] < _TUKEY_ITERS)
-        wa = np.where(reweight, np.where(ph == 1, wb, wh), w[:, idx])
-        sa = np.where(reweight, st, sigma[idx])
-        w[:, idx], sigma[idx] = wa, sa
+        w[:, idx] = wa = np.where(reweight, np.where(ph == 1, wb, wh), w[:, idx])
+        sigma[idx] = sa = np.where(reweight, st, sigma[idx])
         wn = wa / sa**2
         r, pc, _, _ = _procrustes(sha["p"], oa, wa)
         A, g = _normal(_reduced_jacobian(lay, sha, pc, wa) / Ltot, wn, r)
         A += Ps
         g += np.einsum("ijf,jf->if", Ps, ka * Ltot)
-        dg = A[np.arange(S), np.arange(S)]
-        A[np.arange(S), np.arange(S)] = dg * (1 + lam[idx]) + 1e-12 * dg.mean(axis=0) + 1e-300
+        A[diag] = A[diag] * (1 + lam[idx]) + 1e-12 * A[diag].mean(axis=0) + 1e-300
         step = _solve_spd(A, -g) / Ltot
         kn = ka + step
         shn = _shape(kn, lay)
@@ -748,8 +657,7 @@ def _lm_irls(k, w0, obs, valid, lay: _Layout, noise_m, max_iter, Pk, *, robust=T
         done = ((better & (np.max(np.abs(step), axis=0) * Ltot < 1e-8))
                 | (change < _CHI2_TOL + 1e-9 * cost) | (lam[idx] > 1e12))
         active[idx[done & (ph == 1) & (count[idx] >= _TUKEY_ITERS)]] = False
-        rough = change < 0.1 + 1e-3 * cost                 # Huber phase: near enough
-        to_tukey = (ph == 0) & (done | rough | (count[idx] >= _HUBER_MAX_ITERS))
+        to_tukey = (ph == 0) & (done | (change < 0.1 + 1e-3 * cost) | (count[idx] >= _HUBER_MAX_ITERS))
         count[idx] = np.where(to_tukey, 0, count[idx] + 1)
         phase[idx[to_tukey]] = 1
         lam[idx[to_tukey]] = 1e-6
@@ -777,16 +685,12 @@ def _solve_spd(A, b):
 def _determined(w, lay: _Layout):
     """(S, F): segment i has a usable marker strictly beyond its start."""
     starts = np.concatenate([[0.0], np.cumsum(lay.L)[:-1]])
-    beyond = lay.s[:, None] > starts[None, :] + 1e-12          # (K, S)
-    return (beyond.T.astype(float) @ (w > 0)) > 0
+    return (((lay.s[:, None] > starts[None, :] + 1e-12).T.astype(float) @ (w > 0)) > 0)
 
 
 def _curvature_sd(A, sigma):
-    """(F, S): sqrt(diag(A^-1)) * sigma; inf where A is singular along a curvature.
-
-    A tiny ridge (1e-9 of the mean diagonal) keeps A invertible; a variance
-    that the ridge supplies more than 1 % of comes from a null direction.
-    """
+    """(F, S): sqrt(diag(A^-1)) * sigma; inf where A is singular along a curvature
+    (a 1e-9 ridge keeps A invertible; a variance it supplies > 1 % of is a null direction)."""
     S = A.shape[0]
     ridge = 1e-9 * np.einsum("iif->f", A) / S + 1e-300
     A = A + np.eye(S)[..., None] * ridge
