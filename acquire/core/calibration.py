@@ -170,6 +170,23 @@ class FitReport:
         return "\n".join(lines)
 
 
+def _optional_model(d: dict | None, key: str, source: str, n_segments: int):
+    """The memory or force model a calibration file carries, checked; None without one."""
+    if d is None:
+        return None
+    if key == "memory":
+        from acquire.core.memory import StripMemory as model_class
+    else:
+        from acquire.core.force import ForceModel as model_class
+    try:
+        model = model_class.from_dict(d)
+    except (ValueError, TypeError, KeyError) as exc:
+        raise CalibrationError(f"{source}: {key}: {exc}") from None
+    if model.n_segments != n_segments:
+        raise CalibrationError(f"{source}: {key} has {model.n_segments} segments, the calibration {n_segments}")
+    return model
+
+
 # ----------------------------------------------------------------------------- file checks
 
 #: what a calibration file must hold: (key, kind, low, high). ``[]`` stands for
@@ -335,6 +352,12 @@ class Calibration:
     report : FitReport or None
     source : str
         Where it was loaded from (for messages); not saved.
+    memory : dict or None
+        The strip's creep and hysteresis, per segment (:class:`acquire.core.memory.StripMemory`
+        as a dict), or None for a memory-free (static) calibration such as every older file.
+    force : dict or None
+        The finger's stiffness and free curvature under actuation
+        (:class:`acquire.core.force.ForceModel` as a dict), or None.
     """
 
     r0_ohm: np.ndarray
@@ -352,6 +375,8 @@ class Calibration:
     tares: list = field(default_factory=list)
     report: FitReport | None = None
     source: str = "calibration"
+    memory: dict | None = None
+    force: dict | None = None
 
     def __post_init__(self):
         set_ = object.__setattr__
@@ -370,6 +395,18 @@ class Calibration:
         set_(self, "_s_lo", _dpoly(neg, self.x_min))
         span = self.curvature_max_per_m - self.curvature_min_per_m
         set_(self, "_margin", RANGE_MARGIN * span)
+        set_(self, "_memory_model", _optional_model(self.memory, "memory", self.source, self.n_segments))
+        set_(self, "_force_model", _optional_model(self.force, "force", self.source, self.n_segments))
+
+    @property
+    def memory_model(self):
+        """The :class:`~acquire.core.memory.StripMemory` of this calibration, or None (static)."""
+        return self._memory_model
+
+    @property
+    def force_model(self):
+        """The :class:`~acquire.core.force.ForceModel` of this calibration, or None."""
+        return self._force_model
 
     @property
     def n_segments(self) -> int:
@@ -529,6 +566,8 @@ class Calibration:
             },
             "tares": [dict(t) for t in self.tares],
             "fit_report": None if self.report is None else self.report.to_dict(),
+            **({} if self.memory is None else {"memory": self.memory}),
+            **({} if self.force is None else {"force": self.force}),
         }
 
     def to_json(self) -> str:
@@ -583,6 +622,8 @@ class Calibration:
                 tares=list(d.get("tares", [])),
                 report=None if report is None else FitReport.from_dict(report),
                 source=source,
+                memory=d.get("memory"),
+                force=d.get("force"),
             )
         except CalibrationError:
             raise

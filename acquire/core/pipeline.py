@@ -26,6 +26,7 @@ from typing import Iterator
 import numpy as np
 
 from acquire.core.calibration import Calibration
+from acquire.core.stages import ForceStage, MemoryStage
 from acquire.errors import UserError
 from acquire.core.filters import FilterChain, _nanmedian_last_axis, filtfilt_zero_phase
 from acquire.link.frames import FrameBlock
@@ -57,6 +58,15 @@ class Processed:
         Curvature extrapolated beyond the calibrated range.
     chain : ChainCheck
         The individual wiring flags.
+    static_ohm : ndarray of float64, shape (N, S), or None
+        The filtered resistance with the strip's creep and hysteresis taken
+        out (the calibration's memory model), ohm; None for a static calibration.
+    actuation : ndarray of float64, shape (N,), or None
+        The actuation input in the rig's unit (its ``[actuation]`` channel).
+    force_n : ndarray of float32, shape (N, 2), or None
+        Force at the sensor's far end in the base frame, N (calibration with a force model).
+    force_sigma_n : ndarray of float32, shape (N, 2), or None
+        1-sigma of the force's normal and axial components, N.
     """
 
     resistance_ohm: np.ndarray
@@ -66,6 +76,10 @@ class Processed:
     chain_ok: np.ndarray
     outside_calibration: np.ndarray | None
     chain: ChainCheck
+    static_ohm: np.ndarray | None = None
+    actuation: np.ndarray | None = None
+    force_n: np.ndarray | None = None
+    force_sigma_n: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.resistance_ohm.shape[0])
@@ -89,6 +103,10 @@ class Processed:
             chain_ok=cat("chain_ok"),
             outside_calibration=cat("outside_calibration"),
             chain=chain,
+            static_ohm=cat("static_ohm"),
+            actuation=cat("actuation"),
+            force_n=cat("force_n"),
+            force_sigma_n=cat("force_sigma_n"),
         )
 
 
@@ -133,14 +151,19 @@ class Pipeline:
         spacing_m: float = 0.001,
         method: str = "smooth",
         mask_faults: bool = True,
+        with_shape: bool = True,
     ):
         self.rig = rig
+        self.with_shape = bool(with_shape)
         self.rate_hz = float(rate_hz)
         self.adc_bits = int(adc_bits)
         self.mask_faults = bool(mask_faults)
         self.readout = make_readout(rig, adc_bits=adc_bits)
         self.filters = FilterChain.from_rig(rig, rate_hz=rate_hz, n_signals=rig.n_segments)
         self.reconstructor = Reconstructor.from_rig(rig, spacing_m=spacing_m, method=method)
+        self.memory = MemoryStage(rate_hz=rate_hz)
+        self.force = ForceStage(rig=rig, s_m=self.reconstructor.s_m,
+                                n_sensor_points=int(self.reconstructor.tap_index[-1]) + 1)
         self._cal_lock = threading.Lock()
         self._run_lock = threading.Lock()
         self.calibration_notes: list[str] = []
@@ -201,6 +224,7 @@ class Pipeline:
         """Forget the filter state (after a reconnect or a jump in the stream)."""
         with self._run_lock:
             self.filters.reset()
+            self.memory.reset()
 
     def process(self, block: FrameBlock) -> Processed:
         """Process the next block of the stream (processing thread).
@@ -216,21 +240,29 @@ class Pipeline:
         with self._run_lock:
             cal = self.calibration  # one calibration per block
             resistance, check, to_filter = self._read(codes)
-            filtered = self._filter(to_filter, restarts)
-            return self._finish(resistance, filtered, check, cal)
+            filtered, static = self._stateful(to_filter, restarts, cal)
+            return self._finish(np.asarray(codes), resistance, filtered, static, check, cal)
 
-    def _filter(self, x: np.ndarray, restarts) -> np.ndarray:
-        cuts = sorted({int(r) for r in restarts if 0 <= int(r) < x.shape[0]})
-        if not cuts:
-            return self.filters.process(x)
-        parts, start = [], 0
-        for cut in cuts:
-            if cut > start:
-                parts.append(self.filters.process(x[start:cut]))
+    def _stateful(self, x: np.ndarray, restarts, cal) -> tuple[np.ndarray, np.ndarray | None]:
+        """Filters, then the strip's memory: both restart at ``restarts`` (offsets in ``x``)."""
+        cuts = sorted({int(r) for r in restarts if 0 < int(r) < x.shape[0]})
+        if any(int(r) == 0 for r in restarts):
             self.filters.reset()
-            start = cut
-        parts.append(self.filters.process(x[start:]))
-        return np.concatenate(parts)
+            self.memory.reset()
+        if not cuts:
+            filtered = self.filters.process(x)
+            return filtered, self.memory.process(filtered, cal)
+        f_parts, s_parts, start = [], [], 0
+        for stop in [*cuts, x.shape[0]]:
+            f = self.filters.process(x[start:stop])
+            f_parts.append(f)
+            s_parts.append(self.memory.process(f, cal))
+            if stop < x.shape[0]:
+                self.filters.reset()
+                self.memory.reset()
+            start = stop
+        static = None if s_parts[0] is None else np.concatenate(s_parts)
+        return np.concatenate(f_parts), static
 
     def _read(self, codes: np.ndarray):
         codes = np.asarray(codes)
@@ -240,13 +272,17 @@ class Pipeline:
         to_filter = np.where(check.unusable, np.nan, resistance) if self.mask_faults else resistance
         return resistance, check, to_filter
 
-    def _finish(self, resistance, filtered, check, cal) -> Processed:
-        if cal is None:
-            curvature = xy = outside = None
-        else:
-            k, outside = cal.evaluate(filtered)
-            xy = self.reconstructor.shape_xy(k, dtype=np.float32)
+    def _finish(self, codes, resistance, filtered, static, check, cal) -> Processed:
+        actuation = self.force.actuation_value(codes)
+        curvature = xy = outside = force = None
+        if cal is not None:
+            k, outside = cal.evaluate(filtered if static is None else static)
             curvature = k.astype(np.float32)
+            need_shape = self.with_shape or cal.force_model is not None
+            xy = self.reconstructor.shape_xy(k, dtype=np.float32) if need_shape else None
+            force = self.force.process(cal, k, xy, actuation)
+            if not self.with_shape:
+                xy = None
         return Processed(
             resistance_ohm=resistance,
             filtered_ohm=filtered,
@@ -255,6 +291,10 @@ class Pipeline:
             chain_ok=check.ok,
             outside_calibration=outside,
             chain=check,
+            static_ohm=static,
+            actuation=actuation,
+            force_n=None if force is None else force[0],
+            force_sigma_n=None if force is None else force[1],
         )
 
 
@@ -370,7 +410,9 @@ def iter_processed(
     cal = pipe.calibration
     for i, (resistance, check, _) in enumerate(reads):
         start = i * step
-        yield start, pipe._finish(resistance, filtered[start:start + resistance.shape[0]], check, cal)
+        f = filtered[start:start + resistance.shape[0]]
+        chunk = np.asarray(codes[start:start + resistance.shape[0]])
+        yield start, pipe._finish(chunk, resistance, f, pipe.memory.process(f, cal), check, cal)
 
 
 def process_arrays(

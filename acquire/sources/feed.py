@@ -282,7 +282,7 @@ class ViewFeed:
 
 
 class DisplayChain:
-    """Filters (a calibration-free Pipeline), the calibration and the feed, for one source.
+    """The numeric chain for a display: a Pipeline without shapes (the feed draws only the frames it shows).
 
     Thread use: :meth:`process` on the producer thread; :meth:`set_calibration`
     and :meth:`tare` from any thread (take effect at the next block).
@@ -292,7 +292,7 @@ class DisplayChain:
         from acquire.core.pipeline import Pipeline
 
         self.rig = rig
-        self.pipeline = Pipeline(rig=rig, calibration=None, rate_hz=rate_hz, adc_bits=adc_bits)
+        self.pipeline = Pipeline(rig=rig, calibration=None, rate_hz=rate_hz, adc_bits=adc_bits, with_shape=False)
         self.reconstructor = self.pipeline.reconstructor
         self.feed = ViewFeed(
             n_channels=rig.n_channels,
@@ -321,21 +321,18 @@ class DisplayChain:
         with self._lock:
             self._calibration = calibration
             self.calibration_notes = notes
+        self.pipeline.set_calibration(calibration)  # memory and force follow it; takes effect at the next block
         return notes
 
     def process(self, block: FrameBlock) -> None:
         if len(block) == 0:
             return
         out = self.pipeline.process(block)
-        cal = self.calibration
-        curv = None
-        if cal is not None:
-            curv, _ = cal.evaluate(out.filtered_ohm)
         self.feed.push(
             block,
             resistance_ohm=out.resistance_ohm,
             filtered_ohm=out.filtered_ohm,
-            curvature_per_m=curv,
+            curvature_per_m=out.curvature_per_m,
             chain_ok=out.chain_ok,
         )
         with self._lock:

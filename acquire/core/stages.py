@@ -1,0 +1,81 @@
+"""The optional stages of the numeric chain: the strip's memory and the force on the finger.
+
+Both follow the calibration in force (a calibration file may carry a
+``memory`` and a ``force`` section); both are used by
+:class:`acquire.core.pipeline.Pipeline` only, so live, record, replay,
+publish and process compute them the same way.
+
+:class:`MemoryStage`
+    filtered resistance -> the static (memory-free) resistance the
+    calibration's monotone law expects: x = R / r0 - 1 goes through the
+    calibration's :class:`~acquire.core.memory.StripMemory` compensator
+    (causal, with state, chunk-invariant) and back to ohm.
+:class:`ForceStage`
+    curvature, shape and actuation -> the force at the sensor's far end
+    (:class:`~acquire.core.force.ForceEstimator`), and the actuation input
+    in the rig's unit whenever the rig has an ``[actuation]`` channel.
+
+Thread rules: an instance belongs to one Pipeline and runs on its
+processing thread (the Pipeline's lock serialises it).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["MemoryStage", "ForceStage"]
+
+
+class MemoryStage:
+    """Strip memory compensation that follows the calibration in force."""
+
+    def __init__(self, *, rate_hz: float):
+        self.rate_hz = float(rate_hz)
+        self._key = None
+        self._compensator = None
+
+    def reset(self) -> None:
+        """Forget the memory state (a restart of the stream)."""
+        if self._compensator is not None:
+            self._compensator.reset()
+
+    def process(self, filtered_ohm: np.ndarray, calibration) -> np.ndarray | None:
+        """The static resistance (N, S) ohm, or None when the calibration has no memory (new array)."""
+        model = None if calibration is None else calibration.memory_model
+        if model is None:
+            self._key = self._compensator = None
+            return None
+        if self._key is not calibration.memory:  # a new memory model; a tare keeps the same one
+            self._key = calibration.memory
+            self._compensator = model.compensator(rate_hz=self.rate_hz)
+        r0 = np.asarray(calibration.r0_ohm)
+        x = filtered_ohm / r0 - 1.0
+        return r0 * (1.0 + self._compensator.process(x))
+
+
+class ForceStage:
+    """Actuation from its channel and the force from the shape, following the calibration's force model."""
+
+    def __init__(self, *, rig, s_m: np.ndarray, n_sensor_points: int):
+        self.actuation = getattr(rig, "actuation", None)
+        self.s_m = np.asarray(s_m, dtype=np.float64)[:n_sensor_points]
+        self.n_points = int(n_sensor_points)
+        self._key = None
+        self._estimator = None
+
+    def actuation_value(self, codes: np.ndarray) -> np.ndarray | None:
+        """(N,) actuation in the rig's unit, or None without an ``[actuation]`` channel (new array)."""
+        return None if self.actuation is None else self.actuation.value(codes)
+
+    def process(self, calibration, curvature_per_m, xy_m, actuation) -> tuple[np.ndarray, np.ndarray] | None:
+        """(force_n (N, 2) float32, sigma_n (N, 2) float32: normal and axial 1-sigma), or None."""
+        model = None if calibration is None else calibration.force_model
+        if model is None or actuation is None:
+            return None
+        if self._key is not calibration.force:
+            from acquire.core.force import ForceEstimator
+
+            self._key = calibration.force
+            self._estimator = ForceEstimator(model, self.s_m)
+        res = self._estimator.process(curvature_per_m, xy_m[:, : self.n_points], actuation)
+        sigma = np.stack([res.sigma_normal_n, res.sigma_axial_n], axis=1)
+        return res.force_n.astype(np.float32), sigma.astype(np.float32)
