@@ -1,14 +1,25 @@
-"""The host side of tapcurve without a screen.
+"""The host side of tapcurve without a screen (rooms: link, store, core, session, serve, sources, commands, virtual).
 
-Rig files, the serial reader, the frame ring, the HDF5 recorder, the numeric
-core (readout, filters, calibration, reconstruction), wiring health, the
-shape stream server, the virtual finger and the command line. Import the
-submodules directly (``from acquire.link.reader import SerialReader``); this
-package keeps only the few names most scripts need.
+Import the submodules directly (``from acquire.link.reader import SerialReader``);
+this package keeps only the few names most scripts need, loaded on first use
+so that ``tapcurve --help`` does not pay for numpy and h5py.
 """
 from acquire.errors import UserError
-from acquire.link.frames import FrameBlock, FrameRing
-from acquire.store.recording import open_recording
-from acquire.rig import Rig, load_rig
 
 __all__ = ["UserError", "FrameBlock", "FrameRing", "open_recording", "Rig", "load_rig"]
+
+_LAZY = {
+    "FrameBlock": "acquire.link.frames",
+    "FrameRing": "acquire.link.frames",
+    "open_recording": "acquire.store.recording",
+    "Rig": "acquire.rig",
+    "load_rig": "acquire.rig",
+}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    raise AttributeError(f"module 'acquire' has no attribute {name!r}")

@@ -2,8 +2,10 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
-from acquire.rig import Rig
+if TYPE_CHECKING:  # the parser is built without numpy: --help stays fast
+    from acquire.rig import Rig
 
 __all__ = ["VirtualOptions", "add_virtual_source_arguments", "virtual_options_from_args"]
 
