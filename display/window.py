@@ -17,6 +17,7 @@ import numpy as np
 from PyQt5 import QtCore, QtGui, QtWidgets
 
 from acquire.errors import UserError
+from acquire.session.status import status_parts
 from acquire.core.reconstruct import body_outline
 
 from .theme import COLOURS, STYLE_SHEET
@@ -37,14 +38,6 @@ ABOUT_TEXT = (
 )
 #: replay speeds offered, x real time
 SPEEDS = (0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 20.0)
-
-
-def _fmt_bytes(n: int) -> str:
-    if n >= 1e9:
-        return f"{n / 1e9:.2f} GB"
-    if n >= 1e6:
-        return f"{n / 1e6:.1f} MB"
-    return f"{n / 1e3:.0f} kB"
 
 
 def _set_text(widget, text: str) -> None:
@@ -402,41 +395,11 @@ class SensorWindow(QtWidgets.QMainWindow):
         return float(np.median(lat)) if lat else math.nan
 
     def status_text(self) -> str:
+        """The one status line (:mod:`acquire.session.status`), with the window's own state added."""
         st = self.source.status()
-        parts = []
-        if self.live:
-            if st.get("recording"):
-                parts.append(f"● REC {Path(st['recording']).name} {_fmt_bytes(st['recording_bytes'])}")
-            else:
-                parts.append("not recording")
-            rate = st.get("frame_rate_hz", math.nan)
-            parts.append(f"{rate:.1f} frames/s" if math.isfinite(rate) else "-- frames/s")
-            parts.append(f"lost {st['frames_lost']}")
-            parts.append(f"bad packets {st['bad_packets']}")
-            parts.append(f"reconnects {st['reconnects']}")
-            lat = self.display_latency_s()
-            if not math.isfinite(lat):
-                lat = st.get("latency_s", math.nan)
-            parts.append(f"latency {lat * 1e3:.0f} ms" if math.isfinite(lat) else "latency -- ms")
-            if not st.get("connected", True):
-                parts.append("LINK DOWN")
-            if st.get("label"):
-                parts.append(f"label ‘{st['label']}’ open")
-            if st.get("recorder_error"):
-                parts.append(f"RECORDING FAILED: {st['recorder_error']}")
-        else:
-            pos = st["position_s"]
-            parts.append(f"t {pos:.3f} s of {st['duration_s']:.3f} s")
-            parts.append(f"frame {self.source.position_index + 1} of {st['frames']}")
-            parts.append(("▶ " if st["playing"] else "❚❚ ") + f"{st['speed']:g}×")
-            if st.get("following"):
-                parts.append("following the growing file" if st.get("file_live") else "follow (file closed)")
-            parts.append(f"lost on the link {st['frames_lost']}")
-            parts.append(f"bad packets {st['bad_packets']}")
-            if st.get("recovered"):
-                parts.append("file was left unclosed: recovered")
-        cal = st.get("calibration")
-        parts.append(f"calibration: {Path(cal).name if cal else 'none'}")
+        if not self.live:
+            st = dict(st, position_index=self.source.position_index)
+        parts = status_parts(st, latency_s=self.display_latency_s() if self.live else None)
         if self.governor.status():
             parts.append(self.governor.status())
         if self.paused:
