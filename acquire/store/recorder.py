@@ -121,7 +121,8 @@ class Recorder(Worker):
         self._labels: queue.Queue = queue.Queue()
         self._open_labels: dict[int, int] = {}  # label id -> row
         self._next_label_id = 0
-        self._label_id_lock = threading.Lock()  # begin_label may be called from any thread
+        self._label_id_lock = threading.Lock()
+        self._derived_tail = _WholeChunks()  # begin_label may be called from any thread
         self._last_t_device_s = math.nan
         self._t0_host = 0.0
         self._finished = threading.Event()
@@ -146,9 +147,12 @@ class Recorder(Worker):
         parent = self.path.parent
         if not parent.is_dir():
             raise UserError(f"{self.path}: folder {parent} does not exist")
+        # the file is laid out under a hidden name and appears under its own only once it is in
+        # SWMR mode: a recorder killed before that leaves no half-made recording behind
+        starting = self.path.with_name(f".{self.path.name}.{os.getpid()}.starting")
         try:
             # 'w-' fails if the file appeared meanwhile; HDF5 locks it while we write
-            self._file = h5py.File(self.path, "w-", libver=LIBVER)
+            self._file = h5py.File(starting, "w-", libver=LIBVER)
         except (OSError, FileExistsError) as exc:
             raise UserError(f"{self.path}: cannot create ({exc})") from None
         f = self._file
@@ -167,16 +171,25 @@ class Recorder(Worker):
                     n_segments=int(self.n_segments or self.pipeline.rig.n_segments),
                     s_m=self.pipeline.s_m,
                     tap_index=self.pipeline.reconstructor.tap_index,
+                    **_derived_options(self.pipeline),
                 )
             f.swmr_mode = True
             # HDF5 drops its own file lock once SWMR writing starts; ours tells
             # readers (open_recording) that a writer is alive, so they never
             # "repair" a file that is still being written
-            self._lock_fd = os.open(self.path, os.O_RDONLY)
+            self._lock_fd = os.open(starting, os.O_RDONLY)
             fcntl.flock(self._lock_fd, fcntl.LOCK_SH | fcntl.LOCK_NB)  # shared: SWMR readers lock too
+            try:
+                os.link(starting, self.path)  # never replaces a file that appeared meanwhile
+            except FileExistsError:
+                raise UserError(f"{self.path}: exists; tapcurve never overwrites a recording") from None
+            starting.unlink()
         except BaseException:
             f.close()
-            self.path.unlink(missing_ok=True)
+            if self._lock_fd is not None:
+                os.close(self._lock_fd)
+                self._lock_fd = None
+            starting.unlink(missing_ok=True)
             raise
         self._cursor = self.ring.cursor(from_oldest=self.from_oldest)
         self._first_position = self._cursor.position
@@ -244,6 +257,7 @@ class Recorder(Worker):
         finally:
             try:
                 if self.error is None or self._clean_stop:
+                    self._derived_tail.flush(f)
                     self._close_labels(f)
                 f.close()
             except Exception as exc:
@@ -302,8 +316,10 @@ class Recorder(Worker):
             _append(raw["status"], block.status)
             if "derived" in f:
                 out = self.pipeline.process(block)
-                _append(f["derived"]["curvature"], np.asarray(out.curvature_per_m, dtype=np.float32))
-                _append(f["derived"]["xy"], pack_xy(out.xy_m[:, : self._derived_points]))
+                held = self._derived_tail
+                held.append(f["derived"]["curvature"], np.asarray(out.curvature_per_m, dtype=np.float32))
+                held.append(f["derived"]["xy"], pack_xy(out.xy_m[:, : self._derived_points]))
+                _append_optional(f["derived"], out, n, append=held.append)
             self.frames_written += n
             self._last_t_device_s = float(t_dev[-1])
             point = self._clock.add_batch(t_dev, t_host)
@@ -373,6 +389,53 @@ class Recorder(Worker):
         g = f["counters"]
         _append(g["t_host_s"], np.array([time.monotonic() - self._t0_host]))
         _append(g["values"], row)
+
+
+def _derived_options(pipeline) -> dict:
+    """What /derived holds besides the shape: the force with a force model, the actuation with a rig channel."""
+    cal = pipeline.calibration
+    act = getattr(pipeline.rig, "actuation", None)
+    return {"with_force": cal is not None and cal.force_model is not None,
+            "actuation_unit": None if act is None else act.unit}
+
+
+def _append_optional(g: h5py.Group, out, n: int, *, append=None) -> None:
+    """Append the force and actuation of ``n`` processed frames to the datasets /derived has (NaN if missing)."""
+    append = append or _append
+    for name, width in (("force_n", (2,)), ("actuation", ())):
+        if name in g:
+            value = getattr(out, name)
+            append(g[name], np.full((n, *width), np.nan, np.float32) if value is None
+                   else np.asarray(value, dtype=np.float32))
+
+
+class _WholeChunks:
+    """Appends to compressed datasets in whole chunks only; the tail waits in memory until it fills one.
+
+    A compressed chunk rewritten at every flush leaves its older copies as
+    unreclaimed space in a file written in SWMR mode (measured: the file grew
+    2.5 times the stored data), so /derived, which ``tapcurve process`` can
+    recompute from /raw at any time, is written a chunk at a time (a few
+    seconds at 1 kHz); /raw keeps its 0.25 s flushes. Writer thread only.
+    """
+
+    def __init__(self):
+        self._tail: dict[str, np.ndarray] = {}
+
+    def append(self, ds: h5py.Dataset, values: np.ndarray) -> None:
+        tail = self._tail.get(ds.name)
+        data = values if tail is None or tail.shape[0] == 0 else np.concatenate([tail, values])
+        whole = (data.shape[0] // ds.chunks[0]) * ds.chunks[0]
+        if whole:
+            _append(ds, data[:whole])
+        self._tail[ds.name] = data[whole:]
+
+    def flush(self, f: h5py.File) -> None:
+        """Write what waits (at the end of the recording)."""
+        for name, tail in self._tail.items():
+            if tail.shape[0]:
+                _append(f[name], tail)
+        self._tail.clear()
 
 
 #: room for metadata a flush may add (B-tree nodes, heap growth), bytes (common practice, no source)
