@@ -39,7 +39,7 @@ _ADVICE = ("film a session where the finger bends clearly, in both directions, "
            "with pauses of different lengths, and keep the recording running throughout")
 _MAX_RATES = 21          # candidate rates of the coarse search at most
 _MIN_OVERLAP = 0.5       # share of the camera samples a lag must overlap
-_MAX_REFINE_FRAMES = 200_000
+_MAX_REFINE_FRAMES = 50_000
 
 
 class AlignmentError(ValueError):
@@ -143,15 +143,17 @@ def align_clocks(t_rec_s, signal_rec, t_cam_s, signal_cam, *, max_offset_s: floa
     span = t_cam[-1] - t_cam[0]
     dt = max(grid_step_s or max(0.02, cam_dt), 2 * max_ratio * span / (_MAX_RATES - 1))
     off0, rate0, peak, sharp = _coarse(t_rec, r_rec, t_cam, r_cam, dt, max_off, max_ratio)
-    off, rate, score, n_used = _refine(t_rec, r_rec, t_cam, r_cam, off0, rate0, dt,
-                                       max(dt / max(span, dt), 1e-9), max_off, max_ratio)
+    off, rate, score = _refine(t_rec, r_rec, rec_dt, t_cam, r_cam, off0, rate0, dt,
+                               max(dt / max(span, dt), 1e-9), max_off, max_ratio)
+    t_dev = off + (1 + rate) * t_cam
+    n_used = int(((t_dev >= t_rec[0]) & (t_dev <= t_rec[-1]) & np.isfinite(r_cam).any(axis=1)).sum())
     if score < min_score:
         raise AlignmentError(f"the best match correlates only {score:.2f} (need {min_score:g}): "
                              f"the recording and the camera do not show the same motion; {_ADVICE}")
     if sharp < min_sharpness:
         raise AlignmentError(f"the match is not distinct (peak {peak:.2f} is only {sharp:.2f} times the "
                              f"best other; need {min_sharpness:g}), as with repetitive motion; {_ADVICE}")
-    return Alignment(offset_s=off, rate_ppm=rate * 1e6, score=score, sharpness=sharp,
+    return Alignment(offset_s=off, rate_ppm=rate * 1e6, score=float(score), sharpness=sharp,
                      n_frames_used=n_used)
 
 
@@ -276,35 +278,40 @@ def _sharpness(ncc, lag, i):
     return float(min(peak / max(other, peak / 100.0), 100.0))
 
 
-def _refine(t_rec, r_rec, t_cam, r_cam, off0, rate0, dt, drate, max_off, max_ratio):
-    """Nelder-Mead on (offset at the camera mid time, rate), maximising mean correlation."""
+def _refine(t_rec, r_rec, rec_dt, t_cam, r_cam, off0, rate0, dt, drate, max_off, max_ratio):
+    """Nelder-Mead on (offset at the camera mid time, rate), maximising mean correlation.
+
+    The recording ranks are put once on a uniform grid (step rec_dt) so that
+    each evaluation interpolates by index.
+    """
     step = max(1, t_cam.size // _MAX_REFINE_FRAMES)
     tc, rc = t_cam[::step], r_cam[::step]
     t_mid = float(np.median(tc))
     scale = np.array([dt, drate])
+    n_grid = int((t_rec[-1] - t_rec[0]) / rec_dt) + 1
+    grid = np.stack([np.interp(t_rec[0] + np.arange(n_grid) * rec_dt, t_rec, r_rec[:, c])
+                     for c in range(r_rec.shape[1])], axis=1)
 
     def corr(x):
         off_mid, rate = x * scale
-        t = off_mid + (1 + rate) * (tc - t_mid)
-        if abs(off_mid - (1 + rate) * t_mid) > max_off + dt or abs(rate) > max_ratio + drate:
-            return 1.0, 0
-        inside = (t >= t_rec[0]) & (t <= t_rec[-1])
-        if inside.sum() < _MIN_OVERLAP * tc.size:
-            return 1.0, 0
+        u = (off_mid + (1 + rate) * (tc - t_mid) - t_rec[0]) / rec_dt
+        inside = (u >= 0) & (u <= n_grid - 1)
+        if (abs(off_mid - (1 + rate) * t_mid) > max_off + dt or abs(rate) > max_ratio + drate
+                or inside.sum() < _MIN_OVERLAP * tc.size):
+            return 1.0
+        i = np.minimum(u[inside].astype(np.int64), n_grid - 2)
+        f = (u[inside] - i)[:, None]
+        xr, y = grid[i] * (1 - f) + grid[i + 1] * f, rc[inside]
         scores = []
         for c in range(rc.shape[1]):
-            y = rc[inside, c]
-            xr = np.interp(t[inside], t_rec, r_rec[:, c])
-            fin = np.isfinite(y) & np.isfinite(xr)
-            if fin.sum() > 2 and np.std(y[fin]) > 0 and np.std(xr[fin]) > 0:
-                scores.append(np.corrcoef(xr[fin], y[fin])[0, 1])
-        n = int((inside & np.isfinite(rc).any(axis=1)).sum()) * step
-        return (-float(np.mean(scores)), n) if scores else (1.0, 0)
+            fin = np.isfinite(y[:, c]) & np.isfinite(xr[:, c])
+            if fin.sum() > 2 and np.std(y[fin, c]) > 0 and np.std(xr[fin, c]) > 0:
+                scores.append(np.corrcoef(xr[fin, c], y[fin, c])[0, 1])
+        return -float(np.mean(scores)) if scores else 1.0
 
     x0 = np.array([off0 + (1 + rate0) * t_mid, rate0]) / scale
-    res = optimize.minimize(lambda x: corr(x)[0], x0, method="Nelder-Mead",
+    res = optimize.minimize(corr, x0, method="Nelder-Mead",
                             options={"xatol": 1e-3, "fatol": 1e-9, "maxiter": 600,
                                      "initial_simplex": x0 + np.array([[0, 0], [1, 0], [0, 1]])})
     off_mid, rate = res.x * scale
-    value, n_used = corr(res.x)
-    return off_mid - (1 + rate) * t_mid, rate, -value, n_used
+    return float(off_mid - (1 + rate) * t_mid), float(rate), -corr(res.x)

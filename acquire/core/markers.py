@@ -86,9 +86,10 @@ def read_marker_csv(path, *, n_markers: int, name: str | None = None) -> MarkerT
     if n_markers < 1:
         raise ValueError(f"n_markers must be >= 1, got {n_markers}")
     label = str(path) if name is None else str(name)
-    header, rows, lines = _split_rows(_read_text(path, label), label)
+    text = _read_text(path, label)
+    header, rows, lines = _split_rows(text, label)
     _check_header(header, n_markers, label)
-    values, empty = _parse_cells(rows, lines, header, label)
+    values, empty = _parse_cells(rows, lines, header, label, text)
     return _build_track(values, empty, lines, header, label)
 
 
@@ -141,28 +142,24 @@ def _check_header(header: list[str], n_markers: int, label: str) -> None:
             _fail(label, f"header column {col} is {got!r}, expected {exp!r}")
 
 
-def _number(text: str) -> float:
-    """float() without its extras (1_000, non-ASCII digits); '' -> NaN."""
-    if "_" in text or not text.isascii():
-        raise ValueError(text)
-    return float(text) if text else np.nan
-
-
-def _parse_cells(rows, lines, header, label):
-    """Cells -> (float array with NaN for empty cells, empty-cell mask)."""
-    values = np.empty((len(rows), len(header)))
-    empty = np.empty(values.shape, dtype=bool)
-    for i, row in enumerate(rows):
-        cells = [c.strip() for c in row]
-        empty[i] = [not c for c in cells]
+def _parse_cells(rows, lines, header, label, text):
+    """Cells -> (float array, NaN for empty cells; empty-cell mask). Vectorised when the
+    text is ASCII with no underscore beyond the header's (numpy would take 1_000)."""
+    if text.isascii() and text.count("_") == sum(h.count("_") for h in header):
+        cells = np.array(rows, dtype=str)
         try:
-            values[i] = [_number(c) for c in cells]
+            return np.where(cells == "", "nan", cells).astype(float), cells == ""
         except ValueError:
-            for c, col in zip(cells, header):
-                try:
-                    _number(c)
-                except ValueError:
-                    _fail(label, f"line {lines[i]}, column {col}: {c[:40]!r} is not a number")
+            pass                                   # find the culprit cell by cell
+    values, empty = np.empty((len(rows), len(header))), np.empty((len(rows), len(header)), bool)
+    for i, row in enumerate(rows):
+        for j, c in enumerate(c.strip() for c in row):
+            try:
+                if "_" in c or not c.isascii():
+                    raise ValueError(c)
+                values[i, j], empty[i, j] = (float(c) if c else np.nan), not c
+            except ValueError:
+                _fail(label, f"line {lines[i]}, column {header[j]}: {c[:40]!r} is not a number")
     return values, empty
 
 
@@ -170,13 +167,13 @@ def _build_track(values, empty, lines, header, label) -> MarkerTrack:
     bad = ~empty & ~np.isfinite(values)
     if bad.any():
         i, c = np.argwhere(bad)[0]
-        _fail(label, f"line {lines[i]}, column {header[c]}: {values[i, c]!r} is not a finite number")
+        _fail(label, f"line {lines[i]}, column {header[c]}: {float(values[i, c])!r} is not a finite number")
     t = values[:, 0]
     if empty[:, 0].any():
         _fail(label, f"line {lines[int(np.argmax(empty[:, 0]))]}: t_s is empty")
     if (np.diff(t) <= 0).any():
         i = int(np.argmax(np.diff(t) <= 0)) + 1
-        _fail(label, f"line {lines[i]}: t_s {t[i]!r} is not after the previous {t[i - 1]!r} "
+        _fail(label, f"line {lines[i]}: t_s {float(t[i])!r} is not after the previous {float(t[i - 1])!r} "
                      "(t_s must be strictly increasing)")
     xy = values[:, 1:]
     half = empty[:, 1::2] != empty[:, 2::2]
@@ -188,7 +185,7 @@ def _build_track(values, empty, lines, header, label) -> MarkerTrack:
     big = ~empty[:, 1:] & (np.abs(xy) > MAX_ABS_MM)
     if big.any():
         i, c = np.argwhere(big)[0]
-        _fail(label, f"line {lines[i]}, column {header[c + 1]}: {xy[i, c]!r} mm is absurd "
+        _fail(label, f"line {lines[i]}, column {header[c + 1]}: {float(xy[i, c])!r} mm is absurd "
                      f"(|value| > {MAX_ABS_MM:g} mm)")
     never = empty[:, 1::2].all(axis=0)
     if never.any():
@@ -479,7 +476,7 @@ def _leave_one_out(k, w, sigma, obs, valid, lay: _Layout, noise_m, max_iter, Pk,
     if fr.size == 0:
         return
     kv, wv, _ = _lm_irls(_start(obs[:, fr], vv, lay), vv.astype(float), obs[:, fr], vv, lay,
-                         noise_m, max_iter, Pk, robust=False)
+                         noise_m, min(max_iter, 15), Pk, robust=False)   # losers need not converge
     rv, sv = _distances(kv, wv, obs[:, fr], valid[:, fr], lay, noise_m)
     r0, scale = _distances(k[:, flagged], w[:, flagged], obs[:, flagged], valid[:, flagged],
                            lay, noise_m)
