@@ -264,6 +264,7 @@ class CalibrationRun:
     infos: list[HoldInfo]
     notes: list[str] = field(default_factory=list)
     recordings: list[dict] = field(default_factory=list)
+    holds: list[Hold] = field(default_factory=list)
 
 
 def calibrate_files(
@@ -341,10 +342,12 @@ def calibrate_files(
         degree, cv = choose_degree(holds, rig=rig)
     degree = (degree, degree) if np.ndim(degree) == 0 else (int(degree[0]), int(degree[1]))
     cal, report = fit_calibration(holds, rig=rig, degree=degree, recordings=recordings)
-    return CalibrationRun(
+    from acquire.commands.calibrate_memory import add_memory  # the strip's creep and hysteresis, where they help
+
+    return add_memory(CalibrationRun(
         calibration=cal, report=report, degree=degree, cv_rms_per_m=cv, infos=infos, notes=notes,
-        recordings=recordings,
-    )
+        recordings=recordings, holds=holds,
+    ), files=files, rig=rig)
 
 
 
@@ -418,13 +421,14 @@ def calibrate_command(
     out_path: str,
     reference_path: str | None = None,
     force: bool = False,
+    motions: Sequence[tuple[str, str]] = (),
     stdout: TextIO | None = None,
     stderr: TextIO | None = None,
 ) -> int:
-    """``tapcurve calibrate FILE... --rig R --out CAL.json [--reference TABLE] [--force]``.
+    """``tapcurve calibrate [FILE...] --rig R --out CAL.json [--motion REC MARKERS]... [--reference TABLE] [--force]``.
 
     Prints the fit report to ``stdout`` and warnings to ``stderr``; writes
-    the calibration. Returns 0.
+    the calibration and its report picture beside it (CAL.svg). Returns 0.
 
     Raises
     ------
@@ -435,16 +439,30 @@ def calibrate_command(
     stderr = stderr or sys.stderr
     out = Path(out_path)
     rig = load_rig(rig_path)
-    inputs = [Path(f) for f in files] + [Path(rig_path)] + ([Path(reference_path)] if reference_path else [])
+    inputs = [Path(f) for f in files] + [Path(p) for m in motions for p in m] + [Path(rig_path)] + (
+        [Path(reference_path)] if reference_path else [])
     check_output(out, option="--out", force=force, inputs=inputs, what="calibration", can_force=True)
+    from acquire.commands.report_figure import figure_path, report_svg  # the report picture, beside the JSON
+
+    figure = check_output(figure_path(out), option="--out", force=force, inputs=inputs,
+                          what="calibration report picture", can_force=True)
     table = load_reference_table(reference_path) if reference_path else None
-    run = calibrate_files(files, rig=rig, table=table)
+    from acquire.commands.calibrate_motion import calibrate_with_motion, print_calibration_report
+
+    # holds only: calibrate_with_force (which adds the force model when there are force holds)
+    run = calibrate_with_motion(files, motions, rig=rig, table=table, stdout=stdout, stderr=stderr)
     for note in run.notes:
         _warn(note, stderr)
     for w in fit_warnings(run.report):
         _warn(w, stderr)
+    svg = report_svg(run)
     write_text_output(out, run.calibration.to_json(), replace=force)
-    _print_calibration_report(run, out, stdout)
+    write_text_output(figure, svg, replace=force)
+    if motions:
+        print_calibration_report(run, out, stdout, figure=figure)
+    else:
+        _print_calibration_report(run, out, stdout)
+        print(f"wrote {figure}", file=stdout)
     return 0
 
 

@@ -66,7 +66,18 @@ def _add_publish(p: argparse.ArgumentParser) -> None:
     )
 
 
-def build_parser() -> argparse.ArgumentParser:
+#: commands that never run the virtual finger: their parser is built without its options (see build_parser)
+_WITHOUT_SIMULATOR = frozenset({"record", "calibrate", "tare", "process", "replay", "ports", "inspect", "export"})
+
+
+def build_parser(*, simulator: bool = True) -> argparse.ArgumentParser:
+    """The ``tapcurve`` argument parser.
+
+    ``simulator=False`` leaves out the virtual finger's options (of ``live``,
+    ``health`` and ``virtual-device``), which import the simulator: :func:`main`
+    builds the parser so for the commands in :data:`_WITHOUT_SIMULATOR`, which
+    then start without loading it.
+    """
     parser = _Parser(
         prog="tapcurve",
         description="Acquisition, calibration and shape reconstruction for tapped resistive bend sensors.",
@@ -84,9 +95,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds (headless use)")
     _add_publish(p)
     p.add_argument("--label", help="with --record: mark the whole recording as one labelled interval")
-    from acquire.sources.virtual import add_virtual_source_arguments
+    if simulator:
+        from acquire.sources.virtual import add_virtual_source_arguments
 
-    add_virtual_source_arguments(p)
+        add_virtual_source_arguments(p)
 
     p = sub.add_parser("record", help="headless recording to HDF5")
     p.add_argument("--port", required=True, help="serial port of the sensor board")
@@ -98,8 +110,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no status line")
     _add_publish(p)
 
-    p = sub.add_parser("calibrate", help="fit a calibration from labelled recordings")
-    p.add_argument("files", nargs="+", metavar="FILE")
+    p = sub.add_parser("calibrate", help="fit a calibration from labelled recordings and/or filmed motion sessions")
+    p.add_argument("files", nargs="*", metavar="FILE", help="recordings with labelled holds")
+    p.add_argument("--motion", action="append", nargs=2, metavar=("REC.h5", "MARKERS.csv"), default=[],
+                   help="a recording and the marker track filmed during it (repeatable)")
     p.add_argument("--rig", required=True)
     p.add_argument("--out", required=True, metavar="CAL.json")
     p.add_argument("--reference", metavar="TABLE", help="table mapping label names to per-segment curvature")
@@ -137,7 +151,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds")
     p.add_argument("--window", type=number_in("--window", 0.1, 60.0, unit="s"), default=2.0, metavar="S",
                    help="seconds of frames judged at each refresh (default 2)")
-    add_virtual_source_arguments(p)
+    if simulator:
+        add_virtual_source_arguments(p)
 
     p = sub.add_parser("ports", help="list the serial ports; with --probe, which ones answer as a tapcurve board")
     p.add_argument("--probe", action="store_true",
@@ -157,10 +172,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--time", type=number_in("--time", -1e9, 1e9, unit="s"), default=None, metavar="S", help="device time in s (default: last frame)")
     p.add_argument("--calibration")
 
-    from acquire.virtual.cli import add_virtual_device_arguments
-
     p = sub.add_parser("virtual-device", help="run the virtual finger on a pseudo-terminal and print its path")
-    add_virtual_device_arguments(p)
+    if simulator:
+        from acquire.virtual.cli import add_virtual_device_arguments
+
+        add_virtual_device_arguments(p)
     return parser
 
 
@@ -177,7 +193,59 @@ def main(argv: list[str] | None = None, *, window_commands=None) -> int:
     # a write past a file-size limit must fail as an error, not kill the process
     if hasattr(signal, "SIGXFSZ"):
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
-    parser = build_parser()
+    words = sys.argv[1:] if argv is None else list(argv)
+    parser = build_parser(simulator=not (words and words[0] in _WITHOUT_SIMULATOR))
+    streams = sys.stdout, sys.stderr
+    sys.stdout, sys.stderr = _Output(sys.stdout), _Output(sys.stderr)
+    try:
+        return _run(parser, argv)
+    finally:
+        sys.stdout, sys.stderr = streams
+
+
+class _Output:
+    """A standard stream that a terminal gone away cannot break.
+
+    After a hang-up (an SSH session dropping: SIGHUP, then EIO on every write
+    to the terminal) the command still closes its recording and returns its
+    status as after SIGTERM; what it would have printed goes to /dev/null.
+    """
+
+    def __init__(self, stream):
+        self._stream = stream
+
+    def _gone(self, exc: OSError) -> bool:
+        import errno
+        import os
+
+        if exc.errno != errno.EIO:
+            return False
+        try:  # from now on this stream writes to /dev/null (its buffered text too)
+            os.dup2(os.open(os.devnull, os.O_WRONLY), self._stream.fileno())
+        except (OSError, ValueError):
+            return False
+        return True
+
+    def write(self, text: str) -> int:
+        try:
+            return self._stream.write(text)
+        except OSError as exc:
+            if not self._gone(exc):
+                raise
+            return len(text)
+
+    def flush(self) -> None:
+        try:
+            self._stream.flush()
+        except OSError as exc:
+            if not self._gone(exc):
+                raise
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+def _run(parser, argv) -> int:
     try:
         args = parser.parse_args(argv)
         if args.version:
@@ -187,6 +255,7 @@ def main(argv: list[str] | None = None, *, window_commands=None) -> int:
             return 0
         if args.command is None:
             raise UserError("no command given (try: tapcurve --help)")
+        _check_path_names(args)
         handler = _HANDLERS[args.command]
         return int(handler(args) or 0)
     except UserError as exc:
@@ -200,6 +269,31 @@ def main(argv: list[str] | None = None, *, window_commands=None) -> int:
 
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
+
+
+#: arguments that name files, folders or ports (attribute, how the message names it: "" for a positional)
+_PATH_ARGUMENTS = (
+    ("file", ""), ("files", ""), ("ports", ""), ("rig", "--rig"), ("calibration", "--calibration"),
+    ("reference", "--reference"), ("out", "--out"), ("record", "--record"), ("link", "--link"),
+    ("truth", "--truth"), ("markers", "--markers"), ("port", "--port"), ("motion", "--motion"),
+)
+
+
+def _check_path_names(args) -> None:
+    """Refuse a path too long for the file system, whatever the command, before anything opens it.
+
+    The operating system's own error (ENAMETOOLONG) comes from the first
+    ``stat`` of such a path, wherever in a command that happens; checked here
+    once, it is one line naming the argument. URLs (``socket://...``) are not paths.
+    """
+    from acquire.store.outputs import check_path_name
+
+    for attr, option in _PATH_ARGUMENTS:
+        value = getattr(args, attr, None)
+        items = value if isinstance(value, list) else [value]
+        for item in [v for x in items for v in (x if isinstance(x, list) else [x])]:  # --motion: pairs
+            if isinstance(item, str) and "://" not in item:
+                check_path_name(item, option=option)
 
 
 def _cmd_record(args) -> int:
@@ -284,16 +378,25 @@ def _cmd_ports(args) -> int:
 
 
 def _cmd_virtual_device(args) -> int:
+    from acquire.store.outputs import check_folder, check_output
     from acquire.virtual.cli import run_virtual_device
 
+    # the output rules of every command: the ground truth never replaces a file (a recording least of all)
+    if args.truth is not None:
+        check_output(args.truth, option="--truth", what="ground truth", inputs=[args.rig] if args.rig else [])
+    if args.link is not None:  # the port's symlink: an old symlink is replaced, so only its folder is checked
+        check_folder(args.link, option="--link")
     return run_virtual_device(args)
 
 
 def _cmd_calibrate(args) -> int:
     from acquire.commands.calibrate import calibrate_command
 
+    if not args.files and not args.motion:
+        raise UserError("calibrate: give recordings with labelled holds, --motion REC.h5 MARKERS.csv, or both")
     return calibrate_command(
-        files=args.files, rig_path=args.rig, out_path=args.out, reference_path=args.reference, force=args.force
+        files=args.files, rig_path=args.rig, out_path=args.out, reference_path=args.reference, force=args.force,
+        motions=[tuple(m) for m in args.motion],
     )
 
 

@@ -121,6 +121,12 @@ class SegmentReport:
     degree_positive, degree_negative : int
         Polynomial degree used on each side.
     warnings : list of str
+    n_motion_points, n_motion_frames, motion_share : int, int, float
+        Filmed-motion points (frames binned by resistance), their camera frames, their weight share 0..1.
+    rms_residual_holds_per_m, rms_residual_motion_per_m : float or None
+        Residual over hold / motion points alone, 1/m; None: no such points.
+    r0_from : str
+        Where the flat resistance came from: ``holds`` or ``motion``.
     """
 
     segment: int
@@ -133,14 +139,22 @@ class SegmentReport:
     degree_positive: int
     degree_negative: int
     warnings: list[str] = field(default_factory=list)
+    n_motion_points: int = 0
+    n_motion_frames: int = 0
+    motion_share: float = 0.0
+    rms_residual_holds_per_m: float | None = None
+    rms_residual_motion_per_m: float | None = None
+    r0_from: str = "holds"
 
 
 @dataclass
 class FitReport:
-    """What :func:`fit_calibration` did, per segment, with warnings."""
+    """What :func:`fit_calibration` did, per segment, with warnings; one dict per filmed motion session
+    (files, ``offset_s``, ``rate_ppm``, ``sharpness``, frames used, ``marker_residual_mm``)."""
 
     segments: list[SegmentReport]
     warnings: list[str] = field(default_factory=list)
+    motion_sessions: list[dict] = field(default_factory=list)
 
     @property
     def all_warnings(self) -> list[str]:
@@ -150,11 +164,13 @@ class FitReport:
         return out
 
     def to_dict(self) -> dict:
-        return {"segments": [dataclasses.asdict(s) for s in self.segments], "warnings": list(self.warnings)}
+        return {"segments": [dataclasses.asdict(s) for s in self.segments], "warnings": list(self.warnings),
+                "motion_sessions": [dict(m) for m in self.motion_sessions]}
 
     @classmethod
     def from_dict(cls, d: dict) -> "FitReport":
-        return cls(segments=[SegmentReport(**s) for s in d["segments"]], warnings=list(d.get("warnings", [])))
+        return cls(segments=[SegmentReport(**s) for s in d["segments"]], warnings=list(d.get("warnings", [])),
+                   motion_sessions=[dict(m) for m in d.get("motion_sessions", [])])
 
     def summary(self) -> str:
         """Human-readable table, one line per segment, then the warnings."""

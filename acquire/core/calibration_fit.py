@@ -1,4 +1,4 @@
-"""Fitting a calibration from holds: the per-segment, per-direction monotone polynomial.
+"""Fitting a calibration from holds and filmed motion: the per-segment, per-direction monotone polynomial.
 
 See :mod:`acquire.core.calibration` for the model and why it is chosen. Pure;
 any thread; returned objects are new.
@@ -21,7 +21,7 @@ from acquire.core.calibration import (
 )
 from acquire.rig import Rig
 
-__all__ = ["Hold", "fit_calibration"]
+__all__ = ["Hold", "MotionPoints", "fit_calibration"]
 
 
 @dataclass
@@ -50,8 +50,16 @@ def _monotone(coef: np.ndarray, x_edge: float) -> bool:
     return bool(np.all(_dpoly(coef[None, :], u[:, None])[:, 0] > 0))
 
 
-def _fit_side(x, kappa, *, degree, side, on_non_monotone, seg) -> tuple[list[float], int, list[str]]:
+def _fit_side(x, kappa, *, degree, side, on_non_monotone, seg, weight=None, is_hold=None
+              ) -> tuple[list[float], int, list[str]]:
+    """Weighted least squares of one side's polynomial (degree lowered while not monotone).
+
+    The data check (mean x must rise with the reference) looks at hold points
+    only: motion points are bin means with noise of their own.
+    """
     warnings: list[str] = []
+    weight = np.ones_like(x) if weight is None else weight
+    is_hold = np.ones(x.shape, dtype=bool) if is_hold is None else is_hold
     n_distinct = np.unique(np.round(kappa, 9)).size
     d = max(1, min(degree, n_distinct))
     x_edge = float(x.max()) if side == "positive" else float(x.min())
@@ -60,25 +68,16 @@ def _fit_side(x, kappa, *, degree, side, on_non_monotone, seg) -> tuple[list[flo
             f"segment {seg}: holds with {side} curvature do not move the resistance the {side} way "
             f"(positive curvature must raise it); check the label signs and the sensor's orientation"
         )
-    # the data themselves: mean x per reference must rise with the reference
-    ks = np.unique(kappa)
-    xm = np.array([x[kappa == k].mean() for k in ks])
-    for i in np.flatnonzero(np.diff(xm) <= 0):
-        msg = (
-            f"{side} side: resistance does not rise from {ks[i]:+.2f} to {ks[i + 1]:+.2f} 1/m "
-            f"(x {xm[i]:+.4f} -> {xm[i + 1]:+.4f}); the data are not monotone"
-        )
-        if on_non_monotone == "refuse":
-            raise CalibrationError(f"segment {seg}: {msg}")
-        warnings.append(msg)
+    warnings.extend(_data_monotone(x[is_hold], kappa[is_hold], side=side, seg=seg, on_non_monotone=on_non_monotone))
     if n_distinct <= degree and len(x) > 0:
         warnings.append(
             f"{side} side: only {n_distinct} distinct reference curvature(s); "
             f"degree {d} passes through them, so the residual says little"
         )
+    sw = np.sqrt(weight)
     while True:
         a = x[:, None] ** np.arange(1, d + 1)
-        coef = np.linalg.lstsq(a, kappa, rcond=None)[0]
+        coef = np.linalg.lstsq(a * sw[:, None], kappa * sw, rcond=None)[0]
         if _monotone(coef, x_edge):
             return [float(c) for c in coef], d, warnings
         if on_non_monotone == "refuse" or d == 1:
@@ -90,52 +89,51 @@ def _fit_side(x, kappa, *, degree, side, on_non_monotone, seg) -> tuple[list[flo
         d -= 1
 
 
-def fit_calibration(
-    holds: Sequence[Hold | tuple],
-    *,
-    rig: Rig,
-    degree: int | tuple[int, int] = 2,
-    on_non_monotone: str = "lower",
-    recordings: Sequence[dict] = (),
-    min_holds_per_side: int = 2,
-) -> tuple[Calibration, FitReport]:
-    """Fit a calibration from holds (module docstring: model and rules).
+def _data_monotone(x, kappa, *, side, seg, on_non_monotone) -> list[str]:
+    """Mean x per reference must rise with the reference (the data themselves)."""
+    warnings = []
+    ks = np.unique(kappa)
+    xm = np.array([x[kappa == k].mean() for k in ks])
+    for i in np.flatnonzero(np.diff(xm) <= 0):
+        msg = (
+            f"{side} side: resistance does not rise from {ks[i]:+.2f} to {ks[i + 1]:+.2f} 1/m "
+            f"(x {xm[i]:+.4f} -> {xm[i + 1]:+.4f}); the data are not monotone"
+        )
+        if on_non_monotone == "refuse":
+            raise CalibrationError(f"segment {seg}: {msg}")
+        warnings.append(msg)
+    return warnings
 
-    Parameters
+
+@dataclass
+class MotionPoints:
+    """Points of one filmed motion session: camera frames binned by resistance, per segment.
+
+    Attributes
     ----------
-    holds : sequence of Hold or (reference, resistance) tuples
-        ``reference`` is a number (uniform) or shape (S,), 1/m; ``resistance``
-        shape (n, S), ohm, steady frames only. At least one flat hold
-        (reference 0) per segment is required.
-    rig : Rig
-        The rig the recordings were made with.
-    degree : int or (int, int)
-        Highest polynomial degree per side (1..3 sensible); a pair gives the
-        positive and the negative side their own.
-    on_non_monotone : {"lower", "refuse"}
-        Lower the degree with a warning, or raise.
-    recordings : sequence of dict
-        Provenance, ``{"path": ..., "sha256": ...}`` each.
-    min_holds_per_side : int
-        Fewer bent holds than this on a side gives a warning.
-
-    Returns
-    -------
-    (Calibration, FitReport)
-
-    Raises
-    ------
-    CalibrationError
-        No flat hold for a segment, no bent hold at all, a wrong sign, a
-        refused non-monotone fit, or arrays of the wrong shape.
+    x : list of ndarray
+        Per segment, (B_k,): relative resistance change of each bin,
+        ``(R - r0) / r0`` with the session's own flat resistance ``r0``
+        (so a drift of the flat resistance between sessions does not matter).
+    reference_per_m : list of ndarray
+        Per segment, (B_k,): mean marker curvature of each bin, 1/m.
+    frames : list of ndarray
+        Per segment, (B_k,): camera frames in each bin.
+    r0_ohm : ndarray, shape (S,)
+        The session's flat resistance per segment, ohm (NaN: not found).
+    name : str
+        For messages.
     """
-    if on_non_monotone not in ("lower", "refuse"):
-        raise ValueError("on_non_monotone must be 'lower' or 'refuse'")
-    deg_pos, deg_neg = (degree, degree) if np.ndim(degree) == 0 else (degree[0], degree[1])
-    deg_pos, deg_neg = int(deg_pos), int(deg_neg)
-    if min(deg_pos, deg_neg) < 1:
-        raise ValueError("degree must be at least 1")
-    n_seg = rig.n_segments
+
+    x: list
+    reference_per_m: list
+    frames: list
+    r0_ohm: np.ndarray
+    name: str = ""
+
+
+def _hold_means(holds, n_seg: int):
+    """(references (H, S), mean resistances (H, S), frame counts (H, S), labels) of the holds."""
     refs, means, counts, labels = [], [], [], []
     for i, h in enumerate(holds):
         if not isinstance(h, Hold):
@@ -153,80 +151,191 @@ def fit_calibration(
             )
         ok = np.isfinite(res)
         cnt = ok.sum(axis=0)
-        s = np.where(ok, res, 0.0).sum(axis=0)
-        means.append(np.where(cnt > 0, s / np.maximum(cnt, 1), np.nan))
+        tot = np.where(ok, res, 0.0).sum(axis=0)
+        means.append(np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan))
         counts.append(cnt)
         refs.append(ref)
         labels.append(h.label or f"hold {i}")
-    if not refs:
-        raise CalibrationError("no holds to calibrate from")
-    refs_a = np.array(refs)  # (H, S)
-    means_a = np.array(means)
-    counts_a = np.array(counts)
+    shape = (0, n_seg)
+    return (np.array(refs).reshape(shape if not refs else (len(refs), n_seg)), np.array(means).reshape(-1, n_seg),
+            np.array(counts).reshape(-1, n_seg), labels)
 
-    r0 = np.empty(n_seg)
-    pos_c, neg_c, x_lo, x_hi, k_lo, k_hi = [], [], np.zeros(n_seg), np.zeros(n_seg), np.zeros(n_seg), np.zeros(n_seg)
-    seg_reports = []
+
+@dataclass
+class _Points:
+    """One segment's points: holds first, then motion bins."""
+
+    x: np.ndarray
+    kappa: np.ndarray
+    weight: np.ndarray
+    is_hold: np.ndarray
+    r0: float
+    r0_from: str
+    hold_frames: int
+    motion_frames: int
+    labels: list
+
+
+def _segment_points(k, refs, means, counts, labels, motion, *, motion_weight) -> _Points:
+    """Hold means and motion bins of segment k as (x, curvature) points, with the flat resistance."""
+    use = np.isfinite(refs[:, k]) & np.isfinite(means[:, k])
+    kap, rm = refs[use, k], means[use, k]
+    flat = kap == 0
+    mx = [m.x[k] for m in motion if len(m.x[k])]
+    mk = [m.reference_per_m[k] for m in motion if len(m.x[k])]
+    mf = [m.frames[k] for m in motion if len(m.x[k])]
+    motion_r0 = np.array([m.r0_ohm[k] for m in motion if np.isfinite(m.r0_ohm[k])])
+    if flat.any():
+        r0, r0_from = float(rm[flat].mean()), "holds"
+    elif motion_r0.size:
+        r0, r0_from = float(motion_r0.mean()), "motion"
+    elif motion:
+        raise CalibrationError(f"segment {k}: no flat hold and the motion never passes through flat "
+                               f"(curvature 0); R0 cannot be found: film the finger straight too")
+    else:
+        raise CalibrationError(f"segment {k}: no flat hold (label 'flat'); R0 cannot be found")
+    if not r0 > 0:
+        raise CalibrationError(f"segment {k}: flat resistance {r0!r} ohm is not positive")
+    xm = np.concatenate(mx) if mx else np.zeros(0)
+    return _Points(
+        x=np.concatenate([(rm - r0) / r0, xm]), kappa=np.concatenate([kap] + mk),
+        weight=np.concatenate([np.ones(kap.size), np.full(xm.size, float(motion_weight))]),
+        is_hold=np.arange(kap.size + xm.size) < kap.size, r0=r0, r0_from=r0_from,
+        hold_frames=int(counts[use, k].sum()), motion_frames=int(sum(f.sum() for f in mf)),
+        labels=[labels[i] for i in np.flatnonzero(use)],
+    )
+
+
+def _side_selection(pts: _Points):
+    """Points of each side: holds by the sign of their reference, motion bins by the sign of x."""
+    pos = np.where(pts.is_hold, pts.kappa > 0, pts.x > 0)
+    neg = np.where(pts.is_hold, pts.kappa < 0, pts.x < 0)
+    return {"positive": pos, "negative": neg}
+
+
+def _fit_segment(k, pts: _Points, *, deg_pos, deg_neg, on_non_monotone, min_holds_per_side):
+    """Both sides of segment k: ({side: (coef, degree)}, warnings)."""
+    warn: list[str] = []
+    h = pts.is_hold
+    for i in np.flatnonzero(h & (((pts.kappa > 0) & (pts.x < 0)) | ((pts.kappa < 0) & (pts.x > 0)))):
+        warn.append(
+            f"hold {pts.labels[i]!r} ({pts.kappa[i]:+.2f} 1/m) moved the resistance the wrong way "
+            f"(x = {pts.x[i]:+.4f}); check its label"
+        )
+    sides = {}
+    for side, sel in _side_selection(pts).items():
+        if sel.sum() == 0:
+            sides[side] = None
+            continue
+        if (sel & h).sum() < min_holds_per_side and not (sel & ~h).any():
+            warn.append(f"{side} side: only {int(sel.sum())} hold(s)")
+        coef, d, w = _fit_side(
+            pts.x[sel], pts.kappa[sel], degree=deg_pos if side == "positive" else deg_neg, side=side,
+            on_non_monotone=on_non_monotone, seg=k, weight=pts.weight[sel], is_hold=h[sel],
+        )
+        sides[side] = (coef, d)
+        warn.extend(w)
+    if sides["positive"] is None and sides["negative"] is None:
+        raise CalibrationError(f"segment {k}: no bent holds, only flat ones; nothing to fit")
+    for side, other in (("positive", "negative"), ("negative", "positive")):
+        if sides[side] is None:
+            sides[side] = ([sides[other][0][0]], 0)
+            warn.append(f"no {side} holds: {side} bends use the {other} side's initial slope, uncalibrated")
+    return sides, warn
+
+
+def _rms(v) -> float | None:
+    return float(np.sqrt(np.mean(v ** 2))) if v.size else None
+
+
+def _segment_report(k, pts: _Points, sides, warn) -> tuple[SegmentReport, tuple]:
+    """The report of segment k and its ranges (x_lo, x_hi, k_lo, k_hi)."""
+    pos, neg = np.array([sides["positive"][0]]), np.array([sides["negative"][0]])
+    model = np.where(pts.x >= 0, _poly(pos, pts.x[:, None])[:, 0], _poly(neg, pts.x[:, None])[:, 0])
+    err = model - pts.kappa
+    x_hi, x_lo = max(0.0, float(pts.x.max())), min(0.0, float(pts.x.min()))
+    k_hi, k_lo = max(0.0, float(pts.kappa.max())), min(0.0, float(pts.kappa.min()))
+    rms = float(np.sqrt(np.average(err ** 2, weights=pts.weight)))
+    span = k_hi - k_lo
+    m = ~pts.is_hold
+    return SegmentReport(
+        segment=k, n_holds=int(pts.is_hold.sum()), n_frames=pts.hold_frames,
+        rms_residual_per_m=rms, rms_residual_percent=100.0 * rms / span if span > 0 else 0.0,
+        curvature_min_per_m=k_lo, curvature_max_per_m=k_hi,
+        degree_positive=int(sides["positive"][1]), degree_negative=int(sides["negative"][1]), warnings=warn,
+        n_motion_points=int(m.sum()), n_motion_frames=pts.motion_frames,
+        motion_share=float(pts.weight[m].sum() / pts.weight.sum()),
+        rms_residual_holds_per_m=_rms(err[~m]), rms_residual_motion_per_m=_rms(err[m]), r0_from=pts.r0_from,
+    ), (x_lo, x_hi, k_lo, k_hi)
+
+
+def fit_calibration(
+    holds: Sequence[Hold | tuple],
+    *,
+    rig: Rig,
+    degree: int | tuple[int, int] = 2,
+    on_non_monotone: str = "lower",
+    recordings: Sequence[dict] = (),
+    min_holds_per_side: int = 2,
+    motion: Sequence[MotionPoints] = (),
+    motion_weight: float = 1.0,
+) -> tuple[Calibration, FitReport]:
+    """Fit a calibration from holds and/or filmed motion points (module docstring: model and rules).
+
+    Parameters
+    ----------
+    holds : sequence of Hold or (reference, resistance) tuples
+        ``reference`` is a number (uniform) or shape (S,), 1/m; ``resistance``
+        shape (n, S), ohm, steady frames only. A flat hold (reference 0) per
+        segment, or motion that passes through flat, is required.
+    rig : Rig
+        The rig the recordings were made with.
+    degree : int or (int, int)
+        Highest polynomial degree per side (1..3 sensible); a pair gives the
+        positive and the negative side their own.
+    on_non_monotone : {"lower", "refuse"}
+        Lower the degree with a warning, or raise.
+    recordings : sequence of dict
+        Provenance, ``{"path": ..., "sha256": ...}`` each.
+    min_holds_per_side : int
+        Fewer bent holds than this on a side (and no motion there) gives a warning.
+    motion : sequence of MotionPoints
+        Filmed motion sessions, binned (:class:`MotionPoints`).
+    motion_weight : float
+        Weight of one motion bin relative to one hold (each hold mean counts 1).
+
+    Returns
+    -------
+    (Calibration, FitReport)
+
+    Raises
+    ------
+    CalibrationError
+        No flat resistance for a segment, no bent point at all, a wrong sign, a
+        refused non-monotone fit, or arrays of the wrong shape.
+    """
+    if on_non_monotone not in ("lower", "refuse"):
+        raise ValueError("on_non_monotone must be 'lower' or 'refuse'")
+    deg_pos, deg_neg = (degree, degree) if np.ndim(degree) == 0 else (degree[0], degree[1])
+    deg_pos, deg_neg = int(deg_pos), int(deg_neg)
+    if min(deg_pos, deg_neg) < 1:
+        raise ValueError("degree must be at least 1")
+    n_seg = rig.n_segments
+    refs, means, counts, labels = _hold_means(holds, n_seg)
+    if not labels and not motion:
+        raise CalibrationError("no holds to calibrate from")
+    r0, pos_c, neg_c, ranges, seg_reports = np.empty(n_seg), [], [], [], []
     for k in range(n_seg):
-        use = np.isfinite(refs_a[:, k]) & np.isfinite(means_a[:, k])
-        kap = refs_a[use, k]
-        rm = means_a[use, k]
-        flat = kap == 0
-        if not flat.any():
-            raise CalibrationError(f"segment {k}: no flat hold (label 'flat'); R0 cannot be found")
-        r0[k] = rm[flat].mean()
-        if not r0[k] > 0:
-            raise CalibrationError(f"segment {k}: flat resistance {r0[k]!r} ohm is not positive")
-        x = (rm - r0[k]) / r0[k]
-        warn: list[str] = []
-        used_labels = [labels[i] for i in np.flatnonzero(use)]
-        for i in np.flatnonzero(((kap > 0) & (x < 0)) | ((kap < 0) & (x > 0))):
-            warn.append(
-                f"hold {used_labels[i]!r} ({kap[i]:+.2f} 1/m) moved the resistance the wrong way "
-                f"(x = {x[i]:+.4f}); check its label"
-            )
-        sides = {}
-        for side, sel in (("positive", kap > 0), ("negative", kap < 0)):
-            if sel.sum() == 0:
-                sides[side] = None
-                continue
-            if sel.sum() < min_holds_per_side:
-                warn.append(f"{side} side: only {int(sel.sum())} hold(s)")
-            sides[side] = _fit_side(
-                x[sel], kap[sel], degree=deg_pos if side == "positive" else deg_neg, side=side,
-                on_non_monotone=on_non_monotone, seg=k,
-            )
-            warn.extend(sides[side][2])
-        if sides["positive"] is None and sides["negative"] is None:
-            raise CalibrationError(f"segment {k}: no bent holds, only flat ones; nothing to fit")
-        for side, other in (("positive", "negative"), ("negative", "positive")):
-            if sides[side] is None:
-                slope = sides[other][0][0]
-                sides[side] = ([slope], 0, [])
-                warn.append(f"no {side} holds: {side} bends use the {other} side's initial slope, uncalibrated")
+        pts = _segment_points(k, refs, means, counts, labels, motion, motion_weight=motion_weight)
+        r0[k] = pts.r0
+        sides, warn = _fit_segment(k, pts, deg_pos=deg_pos, deg_neg=deg_neg, on_non_monotone=on_non_monotone,
+                                   min_holds_per_side=min_holds_per_side)
         pos_c.append(sides["positive"][0])
         neg_c.append(sides["negative"][0])
-        x_hi[k] = max(0.0, float(x[kap > 0].max())) if (kap > 0).any() else 0.0
-        x_lo[k] = min(0.0, float(x[kap < 0].min())) if (kap < 0).any() else 0.0
-        k_hi[k] = max(0.0, float(kap.max()))
-        k_lo[k] = min(0.0, float(kap.min()))
-        model = np.where(
-            x >= 0, _poly(np.array([pos_c[-1]]), x[:, None])[:, 0], _poly(np.array([neg_c[-1]]), x[:, None])[:, 0]
-        )
-        rms = float(np.sqrt(np.mean((model - kap) ** 2)))
-        span = k_hi[k] - k_lo[k]
-        seg_reports.append(SegmentReport(
-            segment=k,
-            n_holds=int(use.sum()),
-            n_frames=int(counts_a[use, k].sum()),
-            rms_residual_per_m=rms,
-            rms_residual_percent=100.0 * rms / span if span > 0 else 0.0,
-            curvature_min_per_m=float(k_lo[k]),
-            curvature_max_per_m=float(k_hi[k]),
-            degree_positive=int(sides["positive"][1]),
-            degree_negative=int(sides["negative"][1]),
-            warnings=warn,
-        ))
+        rep, rng = _segment_report(k, pts, sides, warn)
+        seg_reports.append(rep)
+        ranges.append(rng)
+    x_lo, x_hi, k_lo, k_hi = (np.array(v) for v in zip(*ranges))
     report = FitReport(segments=seg_reports)
     cal = Calibration(
         r0_ohm=r0,
@@ -248,4 +357,3 @@ def fit_calibration(
         source="fitted calibration",
     )
     return cal, report
-

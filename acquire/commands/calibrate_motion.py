@@ -1,0 +1,558 @@
+"""Calibration from filmed motion sessions: a recording plus the marker track filmed during it.
+
+Per session (:func:`load_motion_session`): the marker track is read
+(:func:`acquire.core.markers.read_marker_csv`) and fitted frame by frame
+(:func:`acquire.core.markers.fit_marker_frames`: reference curvature per
+segment and the base pose); the recording's resistance is filtered as live
+(:func:`acquire.commands.common.filtered_intervals`); the camera clock is
+aligned with the device clock (:func:`acquire.core.align.align_clocks` on the
+relative resistance change against the marker curvature). Camera frames with
+a good marker fit are mapped to device time and paired with the filtered
+resistance interpolated there.
+
+Binning, and why: a session gives thousands of frames, most of them near the
+resting shape. Frames are binned per segment by resistance (the precise
+variable: the curvature, the noisy one, is averaged inside each bin, which is
+the regression of curvature on resistance the model makes, so marker noise
+does not flatten the law), bins of equal width across the range covered.
+Each bin then counts like one hold (one point at one curvature): the fit is
+spread evenly over the range, like a well-chosen set of jigs, and thousands
+of near-flat frames do not outweigh a few holds. Each session's flat
+resistance is where its bins cross curvature 0, and its bins enter the fit as
+relative changes from that, so a drift of the flat resistance between
+sessions does not bias the law.
+
+Threads: the calling (main) thread; everything returned is new and owned by
+the caller.
+"""
+from __future__ import annotations
+
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence, TextIO
+
+import numpy as np
+
+from acquire.commands.calibrate import CalibrationRun, fit_warnings, holds_from_recording
+from acquire.commands.common import (
+    _adc_bits, _warn, check_recording_rig, filtered_intervals, recording_rate_hz, recording_rig,
+)
+from acquire.core.align import Alignment, AlignmentError, align_clocks
+from acquire.core.calibration import (
+    CalibrationError, Hold, check_distinct_recordings, file_sha256, fit_calibration,
+)
+from acquire.core.calibration_fit import MotionPoints
+from acquire.core.markers import MarkerError, MarkerFit, MarkerTrack, fit_marker_frames, read_marker_csv
+from acquire.errors import UserError
+from acquire.rig import Rig
+from acquire.store.recording import open_recording
+
+__all__ = [
+    "MotionSession", "MotionCalibrationRun", "MarkerOverlay", "load_motion_session", "bin_motion",
+    "choose_degree_motion", "calibrate_with_motion", "marker_overlay", "motion_report_lines",
+    "print_calibration_report", "N_BINS", "MIN_BIN_FRAMES", "MAX_RESIDUAL_MM", "MAX_CURVATURE_SD_PER_M",
+]
+
+#: bins per segment across the resistance range a session covers (under 2 1/m each on the demo finger)
+N_BINS = 60
+#: a bin with fewer camera frames is dropped (its mean curvature would carry the markers' noise)
+MIN_BIN_FRAMES = 10
+#: frames whose markers fit worse than this RMS distance are not used, mm
+MAX_RESIDUAL_MM = 1.0
+#: a segment's curvature less certain than this (or than twice its median) in a frame is not used there, 1/m
+#: (the fit's own uncertainty at its noise floor of 0.3 mm: an upper bound, about 7 1/m at end segments)
+MAX_CURVATURE_SD_PER_M = 25.0
+#: frames this close to the recording's start are not used: the filters settle, s
+SETTLE_S = 0.2
+#: points kept per trace for the report picture
+TRACE_POINTS = 4000
+
+
+@dataclass
+class MotionSession:
+    """One filmed motion session, aligned and binned (see the module docstring).
+
+    Attributes
+    ----------
+    recording, markers : str
+        The two files as given.
+    alignment : Alignment
+        Camera -> device clock.
+    frames, frames_used : int
+        Camera frames in the track; frames kept for the fit.
+    marker_residual_mm : float
+        RMS of the markers' distance to the fitted shapes over the kept frames, mm.
+    points : MotionPoints
+        The bins of each segment.
+    t_device_s : ndarray, shape (F,)
+        Device time of each camera frame, s.
+    curvature_per_m : ndarray, shape (F, S)
+        Marker curvature per frame, 1/m; NaN where not used.
+    resistance_ohm : ndarray, shape (F, S)
+        Filtered resistance at each camera frame's device time, ohm.
+    trace_t_s, trace_ohm : ndarray
+        The recording's filtered resistance, decimated (for the picture).
+    provenance : dict
+        Paths and SHA-256 of both files.
+    """
+
+    recording: str
+    markers: str
+    alignment: Alignment
+    frames: int
+    frames_used: int
+    marker_residual_mm: float
+    points: MotionPoints
+    t_device_s: np.ndarray
+    curvature_per_m: np.ndarray
+    resistance_ohm: np.ndarray
+    trace_t_s: np.ndarray
+    trace_ohm: np.ndarray
+    provenance: dict
+
+    def report_dict(self) -> dict:
+        """What the fit report stores about this session (strict JSON values)."""
+        a = self.alignment
+        return {
+            "recording": self.recording, "markers": self.markers, "offset_s": round(a.offset_s, 6),
+            "rate_ppm": round(a.rate_ppm, 3), "sharpness": round(a.sharpness, 3), "score": round(a.score, 4),
+            "frames": self.frames, "frames_used": self.frames_used,
+            "marker_residual_mm": round(self.marker_residual_mm, 4),
+            "r0_ohm": [None if not math.isfinite(v) else round(float(v), 3) for v in self.points.r0_ohm],
+        }
+
+
+@dataclass
+class MotionCalibrationRun(CalibrationRun):
+    """A :class:`~acquire.commands.calibrate.CalibrationRun` with the hold and motion points behind it."""
+
+    sessions: list = field(default_factory=list)
+
+
+# ----------------------------------------------------------------------------- one session
+
+
+def _read_track(markers_path, rig: Rig) -> MarkerTrack:
+    try:
+        return read_marker_csv(markers_path, n_markers=len(rig.markers_s_m))
+    except MarkerError as exc:
+        raise UserError(str(exc)) from None
+
+
+def _read_recording(rec_path, rig: Rig) -> dict:
+    """Device times, filtered resistance (as live) and provenance of a whole recording."""
+    with open_recording(rec_path, allow_live=False) as rec:
+        notes = check_recording_rig(recording_rig(rec), rig, where=str(rec.path))
+        n = rec.n_frames
+        t = rec.file["raw"]["t_device_s"][:n].astype(np.float64)
+        rate, rate_notes = recording_rate_hz(rec, t_device_s=t[:100_000])
+        bits, bit_notes = _adc_bits(rec)
+        if n < 3:
+            raise UserError(f"{rec_path}: only {n} frames; nothing to align a film with")
+        if np.any(np.diff(t) <= 0):
+            raise UserError(f"{rec_path}: device time is not increasing throughout (a device restart?); "
+                            f"film a session without restarts")
+        r = filtered_intervals(rec, rig=rig, rate_hz=rate, adc_bits=bits, intervals=[(0, n)])[0]
+        if rec.recovered:
+            notes.append(f"{rec.path}: was left unclosed by its recorder; recovered")
+    prov = {"path": str(rec_path), "name": Path(rec_path).name, "sha256": file_sha256(rec_path), "frames": n}
+    return {"t": t, "r": r, "notes": notes + rate_notes + bit_notes, "provenance": prov}
+
+
+def _fit_track(track: MarkerTrack, rig: Rig) -> MarkerFit:
+    return fit_marker_frames(track, segment_lengths_m=rig.segment_lengths_m, s_m=rig.markers_s_m,
+                             offset_m=rig.markers_offset_m)
+
+
+def _align(where: str, rec: dict, track: MarkerTrack, fit: MarkerFit) -> Alignment:
+    """align_clocks on relative resistance change against marker curvature; AlignmentError -> UserError."""
+    r = rec["r"]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = r / np.nanmedian(r, axis=0) - 1.0
+    kappa = np.where(fit.ok[:, None], fit.curvature_per_m, np.nan)
+    try:
+        return align_clocks(rec["t"], x, track.t_s, kappa)
+    except AlignmentError as exc:
+        why = str(exc)
+        if why.startswith("no overlap"):
+            raise UserError(f"{where}: no overlap in time: {why.removeprefix('no overlap possible: ')}") from None
+        raise UserError(f"{where}: the motion is too poor to align: {why}") from None
+
+
+def _good_frames(fit: MarkerFit, t_dev: np.ndarray, t_rec: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(frame mask, per-segment mask) of the camera frames to use (module constants)."""
+    ok = fit.ok & np.isfinite(fit.residual_m)
+    med = float(np.median(fit.residual_m[ok])) if ok.any() else 0.0
+    limit = min(MAX_RESIDUAL_MM * 1e-3, max(3.0 * med, 0.05e-3))
+    frame = ok & (fit.residual_m <= limit) & (t_dev >= t_rec[0] + SETTLE_S) & (t_dev <= t_rec[-1])
+    sd = np.where(np.isfinite(fit.curvature_sd_per_m) & frame[:, None], fit.curvature_sd_per_m, np.nan)
+    with np.errstate(invalid="ignore"):
+        typical = np.nan_to_num(np.nanmedian(sd, axis=0), nan=0.0) if frame.any() else np.zeros(sd.shape[1])
+    # a segment far less certain than usual in a frame (markers missed there) is left out of it
+    seg = frame[:, None] & np.isfinite(fit.curvature_per_m) & (sd <= np.minimum(2.0 * typical, MAX_CURVATURE_SD_PER_M))
+    return frame, seg
+
+
+def load_motion_session(rec_path, markers_path, *, rig: Rig, n_bins: int = N_BINS) -> tuple[MotionSession, list[str]]:
+    """Read, fit, align and bin one filmed motion session.
+
+    Parameters
+    ----------
+    rec_path, markers_path : path
+        The recording and the marker CSV filmed during it.
+    rig : Rig
+        Gives the segments and the markers (``[markers]``).
+    n_bins : int
+        Bins per segment (:func:`bin_motion`).
+
+    Returns
+    -------
+    (MotionSession, notes)
+
+    Raises
+    ------
+    UserError
+        One line naming the file(s): an unusable marker file, a recording of
+        another rig, no overlap in time, motion too poor to align, too few good frames.
+    """
+    where = f"{rec_path}/{markers_path}"
+    track = _read_track(markers_path, rig)
+    rec = _read_recording(rec_path, rig)
+    fit = _fit_track(track, rig)
+    if fit.ok.sum() < 10:
+        raise UserError(f"{markers_path}: only {int(fit.ok.sum())} frames show enough markers to fit a shape; "
+                        f"check the rig's [markers] against the film")
+    alignment = _align(where, rec, track, fit)
+    t_dev = alignment.to_device_time(track.t_s)
+    frame, seg = _good_frames(fit, t_dev, rec["t"])
+    if frame.sum() < 2 * MIN_BIN_FRAMES:
+        raise UserError(f"{where}: only {int(frame.sum())} camera frames fit the markers well inside the "
+                        f"recording; film the whole finger, with its markers in view, while recording")
+    r_cam = np.stack([np.interp(t_dev, rec["t"], rec["r"][:, k]) for k in range(rig.n_segments)], axis=1)
+    kappa = np.where(seg, fit.curvature_per_m, np.nan)
+    points = bin_motion(r_cam, kappa, n_bins=n_bins, name=where)
+    step = max(1, rec["t"].size // TRACE_POINTS)
+    session = MotionSession(
+        recording=str(rec_path), markers=str(markers_path), alignment=alignment, frames=int(track.t_s.size),
+        frames_used=int(frame.sum()), marker_residual_mm=float(np.sqrt(np.mean(fit.residual_m[frame] ** 2)) * 1e3),
+        points=points, t_device_s=t_dev, curvature_per_m=kappa, resistance_ohm=r_cam,
+        trace_t_s=rec["t"][::step].copy(), trace_ohm=rec["r"][::step].copy(),
+        provenance={**rec["provenance"], "markers": str(markers_path), "markers_name": Path(markers_path).name,
+                    "markers_sha256": file_sha256(markers_path), "motion": True},
+    )
+    return session, rec["notes"]
+
+
+def bin_motion(resistance_ohm, curvature_per_m, *, n_bins: int = N_BINS, min_frames: int = MIN_BIN_FRAMES,
+               name: str = "") -> MotionPoints:
+    """Bin frames by resistance per segment; the flat resistance where the bins cross curvature 0.
+
+    Parameters
+    ----------
+    resistance_ohm, curvature_per_m : array_like, shape (F, S)
+        Paired frames (NaN: not used).
+    n_bins : int
+        Equal-width bins between the 0.2 % and 99.8 % points of each segment's resistance.
+    min_frames : int
+        Fewer frames make no bin.
+
+    Returns
+    -------
+    MotionPoints
+        Relative changes from the session's own flat resistance (NaN where the
+        bins do not cross 0: then ``x`` holds no points for that segment).
+    """
+    r, k = np.asarray(resistance_ohm, dtype=float), np.asarray(curvature_per_m, dtype=float)
+    xs, ks, fs, r0s = [], [], [], []
+    for s in range(r.shape[1]):
+        ok = np.isfinite(r[:, s]) & np.isfinite(k[:, s])
+        rb, kb, nb = _bins(r[ok, s], k[ok, s], n_bins, min_frames)
+        r0 = _zero_crossing(r[ok, s], k[ok, s])
+        keep = np.isfinite(r0) & (nb > 0)
+        xs.append((rb[keep] - r0) / r0 if np.isfinite(r0) else np.zeros(0))
+        ks.append(kb[keep] if np.isfinite(r0) else np.zeros(0))
+        fs.append(nb[keep] if np.isfinite(r0) else np.zeros(0, dtype=int))
+        r0s.append(r0)
+    return MotionPoints(x=xs, reference_per_m=ks, frames=fs, r0_ohm=np.array(r0s), name=name)
+
+
+def _bins(r, k, n_bins, min_frames):
+    """Mean resistance, mean curvature and frame count of each equal-width resistance bin with enough frames."""
+    if r.size < min_frames:
+        return np.zeros(0), np.zeros(0), np.zeros(0, dtype=int)
+    lo, hi = np.quantile(r, [0.002, 0.998])
+    if not hi > lo:
+        return np.zeros(0), np.zeros(0), np.zeros(0, dtype=int)
+    i = np.clip(((r - lo) / (hi - lo) * n_bins).astype(np.int64), 0, n_bins - 1)
+    inside = (r >= lo) & (r <= hi)
+    n = np.bincount(i[inside], minlength=n_bins)
+    sr = np.bincount(i[inside], weights=r[inside], minlength=n_bins)
+    sk = np.bincount(i[inside], weights=k[inside], minlength=n_bins)
+    m = n >= min_frames
+    return sr[m] / n[m], sk[m] / n[m], n[m]
+
+
+def _zero_crossing(r, k, *, window: float = 0.12, iterations: int = 4) -> float:
+    """Resistance where the frames' curvature crosses 0, ohm (NaN: the motion never passes flat).
+
+    A local quadratic of curvature on resistance (the precise variable, so
+    marker noise does not bias it) through the frames within ``window``
+    (relative, about +-10 1/m on the demo finger) of the current estimate,
+    moved to its zero crossing a few times over; the start is the median
+    resistance of the frames within 3 1/m of flat.
+    """
+    near = np.abs(k) < 3.0
+    if near.sum() < MIN_BIN_FRAMES:
+        return math.nan
+    r0 = float(np.median(r[near]))
+    for _ in range(iterations):
+        sel = np.abs(r - r0) <= window * r0
+        u = (r[sel] - r0) / r0
+        if sel.sum() < 3 * MIN_BIN_FRAMES or np.ptp(u) <= 0:
+            return math.nan
+        c2, c1, c0 = np.polyfit(u, k[sel], 2)
+        if not c1 > 0:
+            return math.nan
+        r0 *= 1.0 - c0 / c1
+    return r0 if math.isfinite(r0) and r0 > 0 else math.nan
+
+
+# ----------------------------------------------------------------------------- degree
+
+
+def _motion_fold(points: Sequence[MotionPoints], fold: int, n_folds: int, *, keep: bool) -> list[MotionPoints]:
+    def pick(a):
+        sel = (np.arange(len(a)) % n_folds != fold) if keep else (np.arange(len(a)) % n_folds == fold)
+        return a[sel]
+
+    return [MotionPoints(x=[pick(v) for v in p.x], reference_per_m=[pick(v) for v in p.reference_per_m],
+                         frames=[pick(v) for v in p.frames], r0_ohm=p.r0_ohm, name=p.name) for p in points]
+
+
+def choose_degree_motion(holds: Sequence[Hold], points: Sequence[MotionPoints], *, rig: Rig, max_degree: int = 3,
+                         n_folds: int = 5) -> tuple[tuple[int, int], dict[int, dict[str, float]]]:
+    """Polynomial degree per side by interleaved n-fold cross-validation over the motion bins.
+
+    Every n-th bin (by resistance) is left out in turn and predicted from the
+    rest and all holds (interpolation, as the calibration is used); per side
+    the degree with the smallest prediction RMS wins, a higher one only if it
+    beats the lower by more than 5 % (as :func:`acquire.commands.calibrate.choose_degree`).
+    """
+    scores: dict[int, dict[str, float]] = {}
+    for d in range(1, max_degree + 1):
+        sq, cnt = {"positive": 0.0, "negative": 0.0}, {"positive": 0, "negative": 0}
+        try:
+            for fold in range(n_folds):
+                cal, _ = fit_calibration(holds, rig=rig, degree=d, motion=_motion_fold(points, fold, n_folds, keep=True))
+                for p in _motion_fold(points, fold, n_folds, keep=False):
+                    for s, (x, k) in enumerate(zip(p.x, p.reference_per_m)):
+                        err = _law(cal, s, x) - k
+                        for side, sel in (("positive", x > 0), ("negative", x < 0)):
+                            sq[side] += float(np.sum(err[sel] ** 2))
+                            cnt[side] += int(sel.sum())
+        except CalibrationError:
+            continue
+        scores[d] = {side: math.sqrt(sq[side] / cnt[side]) if cnt[side] else math.nan for side in sq}
+    chosen = []
+    for side in ("positive", "negative"):
+        tried = [d for d in sorted(scores) if math.isfinite(scores[d][side])]
+        best = tried[0] if tried else 2
+        for d in tried[1:]:
+            if scores[d][side] < 0.95 * scores[best][side]:
+                best = d
+        chosen.append(best)
+    return (chosen[0], chosen[1]), scores
+
+
+def _law(cal, segment: int, x: np.ndarray) -> np.ndarray:
+    """Curvature of relative changes ``x`` of one segment under ``cal``, 1/m."""
+    r = np.full((x.size, cal.n_segments), np.nan)
+    r[:, segment] = cal.r0_ohm[segment] * (1.0 + x)
+    return cal.curvature_per_m(r)[:, segment]
+
+
+# ----------------------------------------------------------------------------- the run
+
+
+def _collect_holds(files, *, rig: Rig, table):
+    """Holds, interval infos, provenance and notes of labelled recordings (as calibrate_files reads them)."""
+    holds, infos, recordings, notes = [], [], [], []
+    for f in files:
+        with open_recording(f, allow_live=False) as rec:
+            if rec.recovered:
+                notes.append(f"{rec.path}: was left unclosed by its recorder; recovered")
+            notes.extend(check_recording_rig(recording_rig(rec), rig, where=str(rec.path)))
+            n = rec.n_frames
+            rate, rate_notes = recording_rate_hz(rec, t_device_s=rec.file["raw"]["t_device_s"][: min(n, 100_000)])
+            bits, bit_notes = _adc_bits(rec)
+            notes.extend(rate_notes + bit_notes)
+            h, i = holds_from_recording(rec, rig=rig, table=table, rate_hz=rate, adc_bits=bits)
+            holds.extend(h)
+            infos.extend(i)
+            recordings.append({"path": str(f), "name": Path(f).name, "sha256": file_sha256(f), "frames": n,
+                               "holds": [x.label for x in i if x.used]})
+            check_distinct_recordings(recordings)
+    if files and not holds:
+        raise UserError(f"{', '.join(map(str, files))}: no usable labelled holds (labels flat, radius=25mm, "
+                        f"curvature=40/m); give motion sessions alone, or label the holds")
+    return holds, infos, recordings, notes
+
+
+def calibrate_with_motion(files: Sequence, motions: Sequence[tuple], *, rig: Rig, table: dict | None = None,
+                          stdout: TextIO | None = None, stderr: TextIO | None = None,
+                          degree: int | tuple[int, int] | None = None) -> CalibrationRun:
+    """Fit a calibration from labelled hold recordings and/or filmed motion sessions.
+
+    Without ``motions`` this is the hold calibration
+    (:func:`acquire.commands.calibrate_force.calibrate_with_force`). With
+    them, holds (if any) and motion bins are fitted together with the same
+    model (:func:`acquire.core.calibration_fit.fit_calibration`); the
+    strip-memory and force models are left out (noted).
+
+    Parameters
+    ----------
+    files : sequence of path
+        Labelled hold recordings (may be empty when ``motions`` is not).
+    motions : sequence of (recording, markers)
+        Filmed motion sessions.
+
+    Raises
+    ------
+    UserError
+        One line naming the file(s) at fault (see :func:`load_motion_session`).
+    """
+    stdout, stderr = stdout or sys.stdout, stderr or sys.stderr
+    if not motions:
+        from acquire.commands.calibrate_force import calibrate_with_force
+
+        return calibrate_with_force(files, rig=rig, table=table, stdout=stdout, stderr=stderr)
+    holds, infos, recordings, notes = _collect_holds(files, rig=rig, table=table)
+    sessions = []
+    for rec_path, markers_path in motions:
+        session, more = load_motion_session(rec_path, markers_path, rig=rig)
+        sessions.append(session)
+        notes.extend(more)
+    motion_prov = [s.provenance for s in sessions]
+    check_distinct_recordings(motion_prov)
+    check_distinct_recordings([{"path": p["markers"], "sha256": p["markers_sha256"]} for p in motion_prov])
+    points = [s.points for s in sessions]
+    cv: dict = {}
+    if degree is None:
+        degree, cv = choose_degree_motion(holds, points, rig=rig)
+    degree = (degree, degree) if np.ndim(degree) == 0 else (int(degree[0]), int(degree[1]))
+    cal, report = fit_calibration(holds, rig=rig, degree=degree, recordings=recordings + motion_prov, motion=points)
+    report.motion_sessions = [s.report_dict() for s in sessions]
+    notes.append("memory (creep, hysteresis) and force models are not fitted from motion sessions; "
+                 "the calibration is static")
+    run = MotionCalibrationRun(calibration=cal, report=report, degree=degree, cv_rms_per_m=cv, infos=infos,
+                               notes=notes, recordings=recordings + motion_prov, holds=holds, sessions=sessions)
+    return run
+
+
+# ----------------------------------------------------------------------------- report
+
+
+def motion_report_lines(report) -> list[str]:
+    """Per segment, points from holds and from motion; per motion session, the alignment found."""
+    lines = ["fit per segment, holds and filmed motion (residual: model - reference, 1/m):",
+             "  segment  holds  motion points  frames  motion share  range 1/m          rms all  holds   motion  R0 from"]
+    f = lambda v: "      -" if v is None else f"{v:7.3f}"  # noqa: E731
+    for s in report.segments:
+        lines.append(
+            f"  {s.segment:7d}  {s.n_holds:5d}  {s.n_motion_points:13d}  {s.n_motion_frames:6d}  "
+            f"{100 * s.motion_share:11.0f}%  {s.curvature_min_per_m:+7.2f} .. {s.curvature_max_per_m:+7.2f}  "
+            f"{s.rms_residual_per_m:7.3f}  {f(s.rms_residual_holds_per_m)} {f(s.rms_residual_motion_per_m)}  "
+            f"{s.r0_from}")
+    lines.append("motion sessions (camera -> device clock):")
+    for m in report.motion_sessions:
+        lines.append(
+            f"  {Path(m['recording']).name} + {Path(m['markers']).name}: offset {m['offset_s']:+.4f} s, "
+            f"rate {m['rate_ppm']:+.1f} ppm, sharpness {m['sharpness']:.1f}, frames used {m['frames_used']} "
+            f"of {m['frames']}, marker residual {m['marker_residual_mm']:.3f} mm")
+    return lines
+
+
+def print_calibration_report(run: CalibrationRun, out: Path, stream: TextIO, *, figure: Path | None = None) -> None:
+    """The printed report of a calibration with motion sessions (holds only: calibrate's own report)."""
+    p = lambda *a: print(*a, file=stream)  # noqa: E731
+    used = [i for i in run.infos if i.used]
+    if run.infos:
+        p(f"labelled intervals: {len(run.infos)}, used as holds: {len(used)}")
+    dp, dn = run.degree
+    p(f"polynomial degree up to {dp} (positive bends) / {dn} (negative bends)"
+      + (", chosen by cross-validation over the motion bins, RMS 1/m:" if run.cv_rms_per_m else ""))
+    for d, e in run.cv_rms_per_m.items():
+        p(f"  degree {d}: positive {e['positive']:.3f}, negative {e['negative']:.3f}")
+    for line in motion_report_lines(run.report):
+        p(line)
+    warns = fit_warnings(run.report)
+    p("warnings:" if warns else "warnings: none")
+    for w in warns:
+        p(f"  {w}")
+    p(f"wrote {out}" + (f" and {figure}" if figure else ""))
+
+
+# ----------------------------------------------------------------------------- overlay
+
+
+@dataclass
+class MarkerOverlay:
+    """Filmed markers in the sensor's base frame at device times (for drawing over a shape).
+
+    Attributes
+    ----------
+    t_device_s : ndarray, shape (F,)
+        Device time of each camera frame, s.
+    xy_base_m : ndarray, shape (F, K, 2)
+        Observed markers moved into the base frame with each frame's fitted
+        pose, m; NaN where missing or the frame's fit failed.
+    alignment : Alignment
+    """
+
+    t_device_s: np.ndarray
+    xy_base_m: np.ndarray
+    alignment: Alignment
+
+    def at(self, t_device_s: float, *, max_gap_s: float = 0.1) -> np.ndarray | None:
+        """Markers (K, 2), m, of the camera frame nearest ``t_device_s``; None if none within ``max_gap_s``."""
+        if self.t_device_s.size == 0:
+            return None
+        i = int(np.clip(np.searchsorted(self.t_device_s, t_device_s), 1, self.t_device_s.size - 1))
+        i = i - 1 if abs(self.t_device_s[i - 1] - t_device_s) <= abs(self.t_device_s[i] - t_device_s) else i
+        return self.xy_base_m[i].copy() if abs(self.t_device_s[i] - t_device_s) <= max_gap_s else None
+
+
+def marker_overlay(rec_path, markers_path, *, rig: Rig | None = None) -> MarkerOverlay:
+    """Align a marker film with a recording and move its markers into the base frame.
+
+    Parameters
+    ----------
+    rec_path, markers_path : path
+    rig : Rig, optional
+        Default: the recording's own rig (its ``[markers]``).
+
+    Raises
+    ------
+    UserError
+        As :func:`load_motion_session`.
+    """
+    if rig is None:
+        with open_recording(rec_path, allow_live=False) as rec:
+            rig = recording_rig(rec)
+    track = _read_track(markers_path, rig)
+    rec = _read_recording(rec_path, rig)
+    fit = _fit_track(track, rig)
+    alignment = _align(f"{rec_path}/{markers_path}", rec, track, fit)
+    z = track.xy_m[..., 0] + 1j * track.xy_m[..., 1]
+    x0, y0, phi = fit.pose.T
+    base = np.exp(-1j * phi)[:, None] * (z - (x0 + 1j * y0)[:, None])
+    xy = np.where(fit.ok[:, None, None], np.stack([base.real, base.imag], axis=-1), np.nan)
+    return MarkerOverlay(t_device_s=alignment.to_device_time(track.t_s), xy_base_m=xy, alignment=alignment)
+
+
+def warn_notes(notes: Sequence[str], stderr: TextIO) -> None:
+    """Each note as a warning line."""
+    for n in notes:
+        _warn(n, stderr)
