@@ -15,7 +15,7 @@ from acquire.errors import UserError
 from acquire.core.reconstruct import body_outline
 
 from .theme import COLOURS, STYLE_SHEET
-from .views import SegmentBars, ShapeView
+from .views import SegmentBars, ShapeView, force_arrow_scale_m_per_n, force_arrow_xy
 
 __all__ = ["save_widget", "ShapeFigure", "export_recording_shape", "IMAGE_SUFFIXES"]
 
@@ -79,9 +79,11 @@ def save_widget(widget: QtWidgets.QWidget, path) -> Path:
 class ShapeFigure(QtWidgets.QWidget):
     """A figure of one frame: the shape to scale beside the per-segment curvature, with a caption."""
 
-    def __init__(self, *, rig, reconstructor, calibration, width_px: int = 1000, height_px: int = 720, parent=None):
+    def __init__(self, *, rig, reconstructor, calibration, width_px: int = 1000, height_px: int = 720,
+                 markers=None, parent=None):
         super().__init__(parent=parent)
         self.rig = rig
+        self.calibration = calibration
         self.setStyleSheet(STYLE_SHEET)
         self.setWindowTitle("tapcurve shape")
         self.resize(width_px, height_px)
@@ -97,6 +99,11 @@ class ShapeFigure(QtWidgets.QWidget):
         if calibration is not None:
             self.bars.set_curvature_mode(float(np.min(calibration.curvature_min_per_m)),
                                          float(np.max(calibration.curvature_max_per_m)))
+        self.markers_overlay = None
+        if markers is not None:  # an acquire.commands.calibrate_motion.MarkerOverlay
+            from .markers_overlay import MarkersOverlay
+
+            self.markers_overlay = MarkersOverlay(self.shape, markers=markers)
         h.addWidget(self.shape, 3)
         h.addWidget(self.bars, 1)
         v.addLayout(h, 1)
@@ -113,6 +120,7 @@ class ShapeFigure(QtWidgets.QWidget):
                                    thickness_below_m=self.rig.thickness_below_m)[0]
         self.shape.show_shape(snap.xy_m, trail_xy_m=snap.trail_xy_m, outline_xy_m=outline)
         parts = [snap.xy_m, np.zeros((1, 2))] + ([outline] if outline is not None else [])
+        force_text = self._draw_force(snap, parts) + self._draw_markers(snap, parts)
         self.shape.fit_to(np.concatenate(parts))
         self.bars.set_values(snap.curvature_per_m)
         k = ", ".join(f"{v:.1f}" for v in snap.curvature_per_m)
@@ -121,11 +129,37 @@ class ShapeFigure(QtWidgets.QWidget):
             f"segment curvature [1/m], base first: {k}.  Tip at x = {tip[0] * 1e3:.1f} mm, "
             f"y = {tip[1] * 1e3:.1f} mm.  Frame seq {snap.seq}.  Body outline from the rig file "
             f"({self.rig.thickness_above_m * 1e3:g} mm above, {self.rig.thickness_below_m * 1e3:g} mm below); "
-            "dashed: unsensed fingertip; dots: tip over the last 1.5 s."
+            "dashed: unsensed fingertip; dots: tip over the last 1.5 s." + force_text
         )
 
+    def _draw_markers(self, snap, parts: list) -> str:
+        """The filmed markers nearest the frame's time (they join ``parts`` for the zoom); caption text."""
+        if self.markers_overlay is None:
+            return ""
+        xy = self.markers_overlay.update(snap.t_device_s)
+        if xy is None:
+            return "  No camera frame within one camera interval of this frame: no filmed markers drawn."
+        parts.append(xy)
+        dt_ms = (self.markers_overlay.shown_t_device_s - snap.t_device_s) * 1e3
+        return f"  Circles: the filmed markers, camera frame {dt_ms:+.1f} ms from this frame."
 
-def export_recording_shape(*, path, out, time_s: float | None = None, calibration=None, force: bool = False) -> Path:
+    def _draw_force(self, snap, parts: list) -> str:
+        """The force arrow at the sensor's far end (its points join ``parts`` for the zoom); caption text."""
+        model = None if self.calibration is None else self.calibration.force_model
+        force = getattr(snap, "force_n", None)
+        if model is None or force is None or not np.isfinite(force).all():
+            self.shape.show_force(None, None, scale_m_per_n=None)
+            return ""
+        scale = force_arrow_scale_m_per_n(model, reach_m=self.rig.sensor_length_m + self.rig.tip_length_m)
+        tip = snap.xy_m[self.shape.end_index]
+        self.shape.show_force(tip, force, scale_m_per_n=scale)
+        parts.append(force_arrow_xy(tip, force, scale_m_per_n=scale))
+        return (f"  Arrow: estimated force at the sensor's end, {float(np.hypot(*force)):.3g} N "
+                f"(x {force[0]:+.3g} N, y {force[1]:+.3g} N), {scale * 1e3:g} mm per N.")
+
+
+def export_recording_shape(*, path, out, time_s: float | None = None, calibration=None, force: bool = False,
+                           markers=None) -> Path:
     """Write the shape at device time ``time_s`` of a recording to ``out`` (.png or .svg).
 
     Parameters
@@ -138,18 +172,27 @@ def export_recording_shape(*, path, out, time_s: float | None = None, calibratio
         Device time, s (``/raw/t_device_s``); None: the last frame.
     calibration : path or None
         Overrides the recording's own calibration.
+    markers : path, MarkerOverlay or None
+        A marker CSV filmed during the recording (aligned and moved into the
+        base frame by :func:`acquire.commands.calibrate_motion.marker_overlay`),
+        or its result: the filmed markers are drawn over the shape.
 
     Raises
     ------
     UserError
-        Not a recording, no calibration at all, the time outside the recording, or an unwritable image.
+        Not a recording, no calibration at all, the time outside the recording, an unwritable image,
+        or an unusable marker file (before anything is written).
     """
     from acquire.sources.replay import ReplaySource
 
     from acquire.store.outputs import check_output
 
-    inputs = [path] + ([calibration] if isinstance(calibration, (str, Path)) else [])
+    inputs = [path] + [f for f in (calibration, markers) if isinstance(f, (str, Path))]
     out_p = _check_out(check_output(out, option="--out", what="image", inputs=inputs, force=force, can_force=True))
+    if isinstance(markers, (str, Path)):
+        from acquire.commands.calibrate_motion import marker_overlay
+
+        markers = marker_overlay(path, markers)
     src = ReplaySource(path=path, calibration=calibration, window_s=2.0).start()
     try:
         src.wait_ready()
@@ -167,7 +210,8 @@ def export_recording_shape(*, path, out, time_s: float | None = None, calibratio
         snap = src.feed.snapshot()
         if snap is None or snap.xy_m is None or not np.isfinite(snap.xy_m).all():
             raise UserError(f"{path}: the frame at {t:.3f} s has no valid shape (a wiring check failed)")
-        fig = ShapeFigure(rig=src.rig, reconstructor=src.reconstructor, calibration=src.calibration)
+        fig = ShapeFigure(rig=src.rig, reconstructor=src.reconstructor, calibration=src.calibration,
+                          markers=markers)
         fig.draw(snap, title=f"{Path(path).name} — t = {snap.t_device_s:.3f} s (frame seq {snap.seq})")
         try:
             return save_widget(fig, out_p)

@@ -14,7 +14,8 @@ from PyQt5 import QtCore, QtGui, QtWidgets
 
 from .theme import COLOURS, series_colour
 
-__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline", "RedrawGovernor", "redraw_ladder"]
+__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline", "RedrawGovernor", "redraw_ladder",
+           "force_arrow_scale_m_per_n", "force_arrow_xy"]
 
 
 def _text_symbol(text: str) -> QtGui.QPainterPath:
@@ -38,6 +39,35 @@ def _pen(colour, width=1.0, style=QtCore.Qt.SolidLine):
     pen.setStyle(style)
     pen.setCosmetic(True)
     return pen
+
+
+def force_arrow_scale_m_per_n(model, *, reach_m: float) -> float:
+    """Arrow length per newton for a force model: a 1-2-5 step near half the finger's reach per typical force.
+
+    The typical force bends the finger by about a radian: ``mean(EI) / L**2`` (small-deflection
+    cantilever, tip load P gives a tip angle P L**2 / (2 EI)), N. Fixed per calibration, so arrow
+    lengths compare between frames.
+    """
+    length = float(np.sum(model.segment_lengths_m))
+    typical_n = float(np.mean(model.ei_n_m2)) / length**2
+    raw = 0.5 * reach_m / max(typical_n, 1e-9)
+    step = 10.0 ** math.floor(math.log10(raw))
+    return next(m * step for m in (5.0, 2.0, 1.0) if m * step <= raw)
+
+
+def force_arrow_xy(tip_xy_m, force_n, *, scale_m_per_n: float, head_fraction: float = 0.25) -> np.ndarray:
+    """Segment end points (6, 2) of an arrow from ``tip_xy_m`` along ``force_n`` (shaft, two head strokes), m."""
+    tip = np.asarray(tip_xy_m, dtype=np.float64)
+    vec = np.asarray(force_n, dtype=np.float64) * scale_m_per_n
+    end = tip + vec
+    length = float(np.hypot(*vec))
+    if not length > 0:
+        return np.repeat(tip[None, :], 6, axis=0)
+    u = vec / length
+    head = head_fraction * length
+    back = -u * head
+    side = np.array([-u[1], u[0]]) * 0.5 * head
+    return np.array([tip, end, end, end + back + side, end, end + back - side])
 
 
 class ShapeView(pg.PlotWidget):
@@ -104,6 +134,14 @@ class ShapeView(pg.PlotWidget):
         # tap numbers as scatter symbols (cached pixmaps): far cheaper per frame than text items
         self.tap_labels = pg.ScatterPlotItem(size=11, pen=None, brush=pg.mkBrush(COLOURS["muted"]), antialias=True)
         plot.addItem(self.tap_labels)
+        self.force_arrow = pg.PlotDataItem(pen=_pen(COLOURS["caution"], 2.5), connect="pairs", antialias=True)
+        plot.addItem(self.force_arrow)
+        # the arrow's scale and value, stated in the view (a label over it, like the message)
+        self.force_label = QtWidgets.QLabel("", self)
+        self.force_label.setStyleSheet(f"color: {COLOURS['caution']}; background: rgba(17, 22, 29, 200); "
+                                       "padding: 3px; font-size: 11px;")
+        self.force_label.setVisible(False)
+        self.force_scale_m_per_n = None
         self._label_symbols = [_text_symbol(str(j)) for j in range(len(self.tap_index))]
         self._trail_brushes: dict[int, list] = {}
         self.message = ""
@@ -153,6 +191,31 @@ class ShapeView(pg.PlotWidget):
         super().resizeEvent(event)
         if hasattr(self, "message_label"):
             self._place_message()
+        if hasattr(self, "force_label"):
+            self._place_force_label()
+
+    def _place_force_label(self) -> None:
+        self.force_label.adjustSize()
+        self.force_label.move(70, max(0, self.height() - self.force_label.height() - 40))
+
+    def show_force(self, tip_xy_m, force_n, *, scale_m_per_n: float | None) -> None:
+        """Draw the force as an arrow at the tip, ``scale_m_per_n`` long per newton; None hides it."""
+        if force_n is None or scale_m_per_n is None or tip_xy_m is None:
+            self.force_arrow.setData([], [])
+            self.force_label.setVisible(False)
+            return
+        mag = float(np.hypot(*force_n))
+        text = (f"force {mag:.3g} N (x {force_n[0]:+.3g}, y {force_n[1]:+.3g})" if math.isfinite(mag)
+                else "force: no estimate") + f" · arrow: {scale_m_per_n * 1e3:g} mm per N"
+        if math.isfinite(mag) and np.isfinite(tip_xy_m).all():
+            pts = force_arrow_xy(tip_xy_m, force_n, scale_m_per_n=scale_m_per_n)
+            self.force_arrow.setData(pts[:, 0], pts[:, 1])
+        else:
+            self.force_arrow.setData([], [])
+        if text != self.force_label.text():
+            self.force_label.setText(text)
+            self._place_force_label()
+        self.force_label.setVisible(True)
 
     def _brushes(self, n: int) -> list:
         b = self._trail_brushes.get(n)
@@ -303,6 +366,38 @@ class TraceView(pg.GraphicsLayoutWidget):
         self.mode = None
         self.set_mode("codes")
         self.set_calibrated(False)
+        # force and actuation rows under the curvature: in the layout only when the source has them
+        self.force_plot, self.force_curve = self._extra_row("force |F|", "N", COLOURS["caution"])
+        self.act_plot, self.act_curve = self._extra_row("actuation", None, COLOURS["accent"])
+        self.extras = (False, None)
+
+    def _extra_row(self, label: str, units, colour):
+        plot = pg.PlotItem()
+        plot.setMenuEnabled(False)
+        plot.hideButtons()
+        plot.showGrid(x=True, y=True, alpha=0.15)
+        plot.setMouseEnabled(x=False, y=True)
+        plot.getAxis("left").setWidth(72)
+        plot.setLabel("left", label, units=units)
+        plot.setXLink(self.top)
+        plot.setMaximumHeight(110)
+        return plot, plot.plot(pen=_pen(colour, 1.2))
+
+    def set_extras(self, *, force: bool, actuation_unit: str | None) -> None:
+        """Show the force row (|F|, N) and the actuation row (in ``actuation_unit``; None: no row)."""
+        if (force, actuation_unit) == self.extras:
+            return
+        self.extras = (force, actuation_unit)
+        for plot in (self.force_plot, self.act_plot):
+            if plot.scene() is not None:
+                self.ci.removeItem(plot)
+        row = 2
+        if force:
+            self.addItem(self.force_plot, row=row, col=0)
+            row += 1
+        if actuation_unit is not None:
+            self.act_plot.setLabel("left", f"actuation ({actuation_unit})" if actuation_unit else "actuation")
+            self.addItem(self.act_plot, row=row, col=0)
 
     def set_mode(self, mode: str) -> None:
         """``codes`` (ADC codes of every channel) or ``resistance`` (segment resistance)."""
@@ -354,6 +449,11 @@ class TraceView(pg.GraphicsLayoutWidget):
             y = snap.trace_curvature_per_m
             for k, c in enumerate(self.curv_curves):
                 c.setData(x, y[:, k], connect="finite")
+        for shown, values, curve in ((self.extras[0], getattr(snap, "trace_force_n", None), self.force_curve),
+                                     (self.extras[1] is not None, getattr(snap, "trace_actuation", None),
+                                      self.act_curve)):
+            if shown and values is not None:
+                curve.setData(x, values, connect="finite")
 
 
 class Timeline(pg.PlotWidget):

@@ -21,7 +21,8 @@ from acquire.session.status import status_parts
 from acquire.core.reconstruct import body_outline
 
 from .theme import COLOURS, STYLE_SHEET
-from .views import RedrawGovernor, SegmentBars, ShapeView, Timeline, TraceView, redraw_ladder
+from .views import (RedrawGovernor, SegmentBars, ShapeView, Timeline, TraceView, force_arrow_scale_m_per_n,
+                    redraw_ladder)
 
 __all__ = ["SensorWindow", "SAFETY_TEXT", "ABOUT_TEXT", "SPEEDS"]
 
@@ -62,6 +63,9 @@ class SensorWindow(QtWidgets.QMainWindow):
         or its timer late, and raise it again when it is not (see
         :class:`display.views.RedrawGovernor`); the status line says so.
         Acquisition and recording run on their own threads and never slow down.
+    markers : acquire.commands.calibrate_motion.MarkerOverlay, optional
+        Filmed markers drawn over the shape at each frame's device time
+        (:class:`display.markers_overlay.MarkersOverlay`).
 
     Attributes
     ----------
@@ -83,9 +87,10 @@ class SensorWindow(QtWidgets.QMainWindow):
     closed = QtCore.pyqtSignal()
 
     def __init__(self, *, source, redraw_hz: float = 60.0, traces_hz: float = 30.0, adaptive: bool = True,
-                 parent=None):
+                 markers=None, parent=None):
         super().__init__(parent=parent)
         self.source = source
+        self.markers = markers
         self.live = bool(source.is_live)
         self.rig = source.rig
         self.current = None
@@ -132,6 +137,11 @@ class SensorWindow(QtWidgets.QMainWindow):
     def _build_views(self) -> None:
         src = self.source
         self.shape = ShapeView(rig=self.rig, reconstructor=src.reconstructor)
+        self.markers_overlay = None
+        if self.markers is not None:
+            from .markers_overlay import MarkersOverlay
+
+            self.markers_overlay = MarkersOverlay(self.shape, markers=self.markers)
         self.bars = SegmentBars(n_segments=self.rig.n_segments)
         self.bars.setMaximumWidth(240)
         self.bars.setMinimumWidth(150)
@@ -314,6 +324,11 @@ class SensorWindow(QtWidgets.QMainWindow):
                 "The bars show each segment's resistance (shaded: the healthy range of the rig file), the traces "
                 "the channels' ADC codes or segment resistances. Load a calibration with “Calibration…”.")
         self.tare_button.setEnabled(cal is not None)
+        model = None if cal is None else cal.force_model
+        reach = self.rig.sensor_length_m + self.rig.tip_length_m
+        self.force_scale_m_per_n = None if model is None else force_arrow_scale_m_per_n(model, reach_m=reach)
+        act = self.rig.actuation
+        self.traces.set_extras(force=model is not None, actuation_unit=None if act is None else act.unit)
 
     # -- drawing ----------------------------------------------------------------------------------------------
     def _interval_ms(self) -> int:
@@ -363,6 +378,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         elif calibrated:
             self.shape.show_shape(None)
             self.shape.set_message("reading unusable (a wiring check failed): no shape for this frame")
+        tip = None if snap.xy_m is None else snap.xy_m[self.shape.end_index]  # force acts at the sensor's far end
+        self.shape.show_force(tip, snap.force_n, scale_m_per_n=self.force_scale_m_per_n)
+        if self.markers_overlay is not None:
+            self.markers_overlay.update(snap.t_device_s)
         if calibrated and self.bars.mode == "curvature":
             self.bars.set_values(snap.curvature_per_m)
         elif not calibrated and self.bars.mode == "resistance":
@@ -599,7 +618,8 @@ class SensorWindow(QtWidgets.QMainWindow):
             when = f"device time {self.current.t_device_s:.3f} s"
         else:
             when = f"t = {self.current.t_device_s - self.source.t_first_s:.3f} s"
-        fig = ShapeFigure(rig=self.rig, reconstructor=self.source.reconstructor, calibration=self.source.calibration)
+        fig = ShapeFigure(rig=self.rig, reconstructor=self.source.reconstructor, calibration=self.source.calibration,
+                          markers=self.markers)
         fig.draw(self.current, title=f"{where} — {when}")
         try:
             return save_widget(fig, path)

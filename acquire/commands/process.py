@@ -21,7 +21,7 @@ from acquire.about import software_version
 from acquire.errors import UserError
 from acquire.core.pipeline import iter_processed, shape_spacing_m
 from acquire.core.reconstruct import Reconstructor
-from acquire.store.recording import LIBVER, create_derived, open_recording, pack_xy
+from acquire.store.recording import DERIVED_OPTIONAL, LIBVER, create_derived, open_recording, pack_xy
 from acquire.store.outputs import check_output
 from acquire.commands.common import (
     CHUNK_FRAMES, PROGRESS_MIN_FRAMES, SPACING_M, _Rows, _adc_bits, _warn, publish_output, recording_rate_hz,
@@ -80,11 +80,15 @@ def _copy_or_link(fi: h5py.File, fo: h5py.File, *, n: int, src_path: Path, out: 
 
 def _write_derived(fo, rec, *, rig, cal, recon, n, rate, bits, spacing_m, zero_phase, chunk_frames, bar):
     """Compute /derived chunk by chunk; returns (frames beyond the calibration per segment, frames without shape)."""
-    n_points = create_derived(fo, n_segments=rig.n_segments, s_m=recon.s_m, tap_index=recon.tap_index)
+    n_points = create_derived(
+        fo, n_segments=rig.n_segments, s_m=recon.s_m, tap_index=recon.tap_index,
+        with_force=cal.force_model is not None, actuation_unit=None if rig.actuation is None else rig.actuation.unit,
+    )
     g = fo["derived"]
     curv, xy = g["curvature"], g["xy"]
-    curv.resize(n, axis=0)
-    xy.resize(n, axis=0)
+    extra = [g[name] for name in DERIVED_OPTIONAL if name in g]
+    for ds in [curv, xy, *extra]:
+        ds.resize(n, axis=0)
     outside = np.zeros(rig.n_segments, dtype=np.int64)
     nan_frames = 0
     for start, p in iter_processed(
@@ -94,6 +98,9 @@ def _write_derived(fo, rec, *, rig, cal, recon, n, rate, bits, spacing_m, zero_p
         stop = start + len(p)
         curv[start:stop] = p.curvature_per_m
         xy[start:stop] = pack_xy(p.xy_m[:, :n_points])
+        for ds in extra:  # force_n, actuation
+            value = getattr(p, ds.name.rsplit("/", 1)[-1])
+            ds[start:stop] = np.nan if value is None else value
         outside += p.outside_calibration.sum(axis=0)
         nan_frames += int(np.count_nonzero(~np.isfinite(p.curvature_per_m).all(axis=1)))
         bar.update(stop - bar.n)
@@ -150,7 +157,9 @@ def process_recording(
     The copy holds every group of ``file`` except its old ``/derived`` (if
     any), the root attributes with ``calibration_json`` set to the calibration
     used, and a new ``/derived``: ``curvature`` float32 (N, S) 1/m, ``s_m``
-    float64 (P,) m, ``xy`` float32 (N, P, 2) m, each with ``units``. The copy is
+    float64 (P,) m, ``xy`` float32 (N, P, 2) m, with a force model
+    ``force_n`` float32 (N, 2) N, with a rig ``[actuation]`` ``actuation``
+    float32 (N,) in its unit, each with ``units``. The copy is
     written under a temporary name and appears under ``out_path`` only when
     complete (the input is never modified; a recovered input is one a killed
     recorder left unclosed).

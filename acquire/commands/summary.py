@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import math
 
 import numpy as np
 
@@ -62,7 +63,30 @@ def inspect_summary(path) -> dict:
             "calibration": cal_info,
             "clock": rec.clock(),
             "derived": rec.has_derived,
+            "derived_force": rec.has_derived and "force_n" in rec.file["derived"],
+            "actuation": _actuation_summary(rec, n),
         }
+
+
+_COLUMN_CHUNK = 65536  # rows read at a time for one channel's range
+
+
+def _actuation_summary(rec, n: int) -> dict | None:
+    """The rig's ``[actuation]``: channel, unit and the range recorded (in its unit); None without one."""
+    from acquire.rig import RigError, parse_rig
+
+    try:
+        act = parse_rig(rec.rig_toml, source=str(rec.path)).actuation
+    except RigError:
+        return None
+    if act is None:
+        return None
+    lo, hi = math.inf, -math.inf
+    adc = rec.file["raw"]["adc"]
+    for start in range(0, n, _COLUMN_CHUNK):
+        v = act.value(adc[start:min(n, start + _COLUMN_CHUNK)])
+        lo, hi = min(lo, float(v.min())), max(hi, float(v.max()))
+    return {"channel": act.channel, "unit": act.unit, "min": lo if n else None, "max": hi if n else None}
 
 
 def format_summary(s: dict) -> str:
@@ -124,5 +148,12 @@ def format_summary(s: dict) -> str:
         lines.append(f"  calibration {cal.get('model', '?')} from {cal.get('created_utc', '?')}")
     else:
         lines.append("  calibration none")
-    lines.append(f"  derived     {'yes' if s['derived'] else 'no'}")
+    act = s.get("actuation")
+    if act:
+        span = f"{act['min']:.4g} .. {act['max']:.4g} {act['unit']}" if act["min"] is not None else "no frames"
+        lines.append(f"  actuation   channel {act['channel']} ({act['unit'] or 'no unit'}), recorded {span}")
+    derived = "no"
+    if s["derived"]:
+        derived = "yes, with force_n (estimated force, N)" if s.get("derived_force") else "yes, no force"
+    lines.append(f"  derived     {derived}")
     return "\n".join(lines)

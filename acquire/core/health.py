@@ -467,6 +467,14 @@ def assess_health(
             _add(ch, level, f"{what} noise {ch.noise_lsb:.0f} LSB RMS, {ch.noise_mv:.1f} mV (limit {limit:g}): "
                             "loose contact, long unshielded lead or a noisy supply?")
 
+    act = getattr(rig, "actuation", None)
+    if act is not None:  # the pressure channel: its own words, value in its unit
+        from acquire.core.health_actuation import judge_actuation_channel
+
+        judge_actuation_channel(chans[act.index], actuation=act, at_zero=float(at_zero[act.index]),
+                                at_full=float(at_full[act.index]), others_vary=int(others_vary[act.index]),
+                                full_code=full, thresholds=th)
+
     # -- segment verdicts
     short_seg = (np.abs(mean_drop) < th.short_lsb) & np.isfinite(mean_drop)
     # two taps that read alike because one of them is stuck or floating are not a short

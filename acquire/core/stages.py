@@ -75,7 +75,22 @@ class ForceStage:
             from acquire.core.force import ForceEstimator
 
             self._key = calibration.force
-            self._estimator = ForceEstimator(model, self.s_m)
+            options = _estimator_options(calibration.force.get("estimator"))
+            self._estimator = ForceEstimator(model, self.s_m, **options)
         res = self._estimator.process(curvature_per_m, xy_m[:, : self.n_points], actuation)
         sigma = np.stack([res.sigma_normal_n, res.sigma_axial_n], axis=1)
         return res.force_n.astype(np.float32), sigma.astype(np.float32)
+
+
+#: estimator options a calibration's force section may carry (fitted with it), and their bounds
+_ESTIMATOR_BOUNDS = {"axial_prior_sigma_n": (1e-6, 1e4), "curvature_noise_per_m": (1e-6, 1e3)}
+
+
+def _estimator_options(d) -> dict:
+    """The stored estimator options that are known and within bounds (others are ignored)."""
+    out = {}
+    for key, (lo, hi) in _ESTIMATOR_BOUNDS.items():
+        value = (d or {}).get(key)
+        if isinstance(value, (int, float)) and not isinstance(value, bool) and lo <= value <= hi:
+            out[key] = float(value)
+    return out

@@ -37,6 +37,12 @@ With a calibration loaded, frame messages also have
     The last shape point (the fingertip when the rig describes one), m.
 ``chain_ok``
     Every wiring check passed for this frame (false: do not trust the shape).
+``force_n``
+    With a calibration that has a force model: the estimated force at the
+    sensor's far end ``[Fx, Fy]``, base frame, N (10 uN steps).
+
+With an ``[actuation]`` table in the rig, frame messages also have
+``actuation``, the actuation input in the rig's unit (6 significant digits).
 
 A value that cannot be computed (a broken wire) is ``null``.
 
@@ -111,6 +117,7 @@ from acquire.errors import UserError
 from acquire.session.worker import Worker
 from acquire.link.frames import FrameBlock, FrameRing
 from acquire.serve.address import _format_address, _is_loopback, check_address, parse_address
+from acquire.serve.messages import FrameEncoder
 
 __all__ = ["ShapePublisher", "parse_address", "check_address"]
 
@@ -118,19 +125,6 @@ _MAX_REQUEST_BYTES = 4096  # a request line longer than this is refused
 _SEND_CHUNK_BYTES = 256 * 1024  # most bytes joined into one send() call
 _MIN_CLIENT_BUFFER_BYTES = 16 * 1024
 _SEND_FLAGS = getattr(socket, "MSG_NOSIGNAL", 0)  # a vanished client must not raise SIGPIPE
-
-
-def _list_format(n: int, spec: str) -> str:
-    return "[" + ",".join([spec] * n) + "]"
-
-
-def _json_or_null(values, decimals: int | None):
-    """Nested lists with non-finite numbers as None (slow path, frames with a fault only)."""
-    if isinstance(values, list):
-        return [_json_or_null(v, decimals) for v in values]
-    if not math.isfinite(values):
-        return None
-    return round(values, decimals) if decimals is not None else float(f"{values:.6g}")
 
 
 class _Client:
@@ -385,15 +379,11 @@ class ShapePublisher(Worker):
         return f"cannot listen ({exc.strerror or exc})"
 
     def _prepare_formats(self) -> None:
-        n_ch = self.ring.n_channels
-        self._fmt_codes = _list_format(n_ch, "%d")
-        if self._pipeline is not None:
-            s_m = np.asarray(self._pipeline.s_m, dtype=np.float64)
-            n_seg = self.rig.n_segments
-            self._n_points = int(s_m.shape[0])
-            self._fmt_curv = _list_format(n_seg, "%.6g")
-            self._fmt_xy = "[" + ",".join(["[%.7f,%.7f]"] * self._n_points) + "]"
-            self._s_m_part = ',"s_m":' + json.dumps([round(float(v), 7) for v in s_m], separators=(",", ":"))
+        shaped = self._pipeline is not None
+        self._encoder = FrameEncoder(
+            n_channels=self.ring.n_channels, n_segments=self.rig.n_segments if shaped else None,
+            s_m=self._pipeline.s_m if shaped else None, actuation=getattr(self.rig, "actuation", None),
+        )
 
     def set_calibration(self, calibration) -> None:
         """Use ``calibration`` (a new one, or a tared one) from the next frames on.
@@ -499,43 +489,7 @@ class ShapePublisher(Worker):
 
     def _encode(self, block: FrameBlock, processed, idx: np.ndarray) -> list[bytes]:
         """JSON text (without the closing ``,"dropped":N}``) of frames ``idx``."""
-        counters = self._counters_part()
-        seq = block.seq[idx].tolist()
-        t = block.t_device_s[idx].tolist()
-        codes = block.codes[idx].tolist()
-        out = []
-        if processed is None:
-            for j in range(idx.size):
-                out.append(
-                    ('{"seq":%d,"t_device_s":%.6f,"codes":' % (seq[j], t[j])
-                     + self._fmt_codes % tuple(codes[j]) + counters).encode()
-                )
-            return out
-        curv = processed.curvature_per_m[idx].astype(np.float64)
-        xy = processed.xy_m[idx].astype(np.float64)
-        finite = np.isfinite(curv).all(axis=1) & np.isfinite(xy).all(axis=(1, 2))
-        ok = processed.chain_ok[idx].tolist()
-        curv_l = curv.tolist()
-        xy_flat = xy.reshape(idx.size, -1).tolist()
-        for j in range(idx.size):
-            head = '{"seq":%d,"t_device_s":%.6f,"codes":' % (seq[j], t[j]) + self._fmt_codes % tuple(codes[j])
-            if finite[j]:
-                row = xy_flat[j]
-                shape = (
-                    ',"curvature":' + self._fmt_curv % tuple(curv_l[j]) + self._s_m_part
-                    + ',"xy":' + self._fmt_xy % tuple(row)
-                    + ',"tip_xy":[%.7f,%.7f]' % (row[-2], row[-1])
-                )
-            else:  # a fault: JSON has no NaN, so null where a value is missing
-                pts = _json_or_null(xy[j].tolist(), 7)
-                shape = (
-                    ',"curvature":' + json.dumps(_json_or_null(curv_l[j], None), separators=(",", ":"))
-                    + self._s_m_part
-                    + ',"xy":' + json.dumps(pts, separators=(",", ":"))
-                    + ',"tip_xy":' + json.dumps(pts[-1], separators=(",", ":"))
-                )
-            out.append((head + shape + ',"chain_ok":' + ("true" if ok[j] else "false") + counters).encode())
-        return out
+        return self._encoder.encode(block, processed, idx, self._counters_part())
 
     def _enqueue(self, client: _Client, data: bytes, is_frame: bool) -> None:
         size = len(data) + (24 if is_frame else 0)  # room for the "dropped" suffix

@@ -68,6 +68,15 @@ class ViewSnapshot:
         Min/max envelope per bucket of ``bucket_frames`` frames.
     chain_ok : bool
         The newest frame passed every wiring check.
+    force_n : ndarray of float64, shape (2,), or None
+        Newest frame's estimated force at the sensor's far end (Fx, Fy), base frame, N
+        (None without a force model).
+    actuation : float or None
+        Newest frame's actuation in the rig's unit (None without ``[actuation]``).
+    trace_force_n : ndarray of float32, shape (2B,), or None
+        Min/max envelope of the force magnitude ``|F|`` per bucket, N.
+    trace_actuation : ndarray of float32, shape (2B,), or None
+        Min/max envelope of the actuation per bucket.
     """
 
     version: int
@@ -86,6 +95,21 @@ class ViewSnapshot:
     trace_resistance_ohm: np.ndarray
     trace_curvature_per_m: np.ndarray | None
     chain_ok: bool
+    force_n: np.ndarray | None = None
+    actuation: float | None = None
+    trace_force_n: np.ndarray | None = None
+    trace_actuation: np.ndarray | None = None
+
+
+def _extra_rows(force_n, actuation, n: int) -> np.ndarray:
+    """(N, 2) float32: the force magnitude |F| (N) and the actuation, NaN where absent."""
+    out = np.full((n, 2), np.nan, dtype=np.float32)
+    if force_n is not None:
+        f = np.asarray(force_n, dtype=np.float32)
+        out[:, 0] = np.hypot(f[:, 0], f[:, 1])
+    if actuation is not None:
+        out[:, 1] = actuation
+    return out
 
 
 class ViewFeed:
@@ -137,6 +161,7 @@ class ViewFeed:
         self._res = np.zeros((b2, 2, self.n_segments), dtype=np.float32)
         self._curv = np.zeros((b2, 2, self.n_segments), dtype=np.float32)
         self._tip = np.zeros((b2, 2))
+        self._extra = np.full((b2, 2, 2), np.nan, dtype=np.float32)  # |F| and actuation envelopes
         self.reset()
 
     def reset(self) -> None:
@@ -146,11 +171,13 @@ class ViewFeed:
             self._frames = 0
             self._buckets = 0  # buckets ever completed since reset
             self._has_curv = False
+            self._has_extra = (False, False)  # force, actuation
             self._pending: list[tuple] = []  # rows of an incomplete bucket
             self._pending_n = 0
             self._newest = None
 
-    def push(self, block: FrameBlock, *, resistance_ohm, filtered_ohm, curvature_per_m, chain_ok) -> None:
+    def push(self, block: FrameBlock, *, resistance_ohm, filtered_ohm, curvature_per_m, chain_ok,
+             force_n=None, actuation=None) -> None:
         """Add N processed frames (producer thread).
 
         Parameters
@@ -159,6 +186,8 @@ class ViewFeed:
         resistance_ohm, filtered_ohm : ndarray, shape (N, S), ohm
         curvature_per_m : ndarray, shape (N, S), 1/m, or None
         chain_ok : ndarray of bool, shape (N,)
+        force_n : ndarray, shape (N, 2), N, or None
+        actuation : ndarray, shape (N,), or None
         """
         n = len(block)
         if n == 0:
@@ -172,13 +201,16 @@ class ViewFeed:
             block.codes,
             np.asarray(resistance_ohm, dtype=np.float32),
             np.asarray(curvature_per_m, dtype=np.float32) if has_curv else None,
+            _extra_rows(force_n, actuation, n),
         )
+        has_extra = (force_n is not None, actuation is not None)
         with self._lock:
             if has_curv != self._has_curv and self._frames:
                 # calibration appeared or went: older buckets mean something else
                 self._buckets = 0
                 self._pending, self._pending_n = [], 0
             self._has_curv = has_curv
+            self._has_extra = has_extra
             self._pending.append(rows)
             self._pending_n += n
             b = self.bucket_frames
@@ -188,15 +220,18 @@ class ViewFeed:
                 codes = np.concatenate([r[1] for r in self._pending]).astype(np.float32)
                 res = np.concatenate([r[2] for r in self._pending])
                 curv = np.concatenate([r[3] for r in self._pending]) if has_curv else None
+                extra = np.concatenate([r[4] for r in self._pending])
                 m = full * b
                 self._store(
                     t[:m].reshape(full, b)[:, -1],
                     codes[:m].reshape(full, b, -1),
                     res[:m].reshape(full, b, -1),
                     None if curv is None else curv[:m].reshape(full, b, -1),
+                    extra[:m].reshape(full, b, 2),
                 )
                 rest = slice(m, None)
-                self._pending = [(t[rest], codes[rest], res[rest], None if curv is None else curv[rest])]
+                self._pending = [(t[rest], codes[rest], res[rest], None if curv is None else curv[rest],
+                                  extra[rest])]
                 self._pending_n -= m
             self._frames += n
             self._version += 1
@@ -210,14 +245,16 @@ class ViewFeed:
                 None if not has_curv else np.array(curvature_per_m[-1], dtype=np.float64),
                 xy_new,
                 bool(np.asarray(chain_ok)[-1]),
+                None if force_n is None else np.array(force_n[-1], dtype=np.float64),
+                None if actuation is None else float(np.asarray(actuation)[-1]),
             )
 
-    def _store(self, t_last, codes, res, curv) -> None:
+    def _store(self, t_last, codes, res, curv, extra) -> None:
         # caller holds the lock; codes etc. shape (k, bucket_frames, X)
         k = t_last.shape[0]
         cap = self.capacity
         if k > cap:
-            t_last, codes, res = t_last[-cap:], codes[-cap:], res[-cap:]
+            t_last, codes, res, extra = t_last[-cap:], codes[-cap:], res[-cap:], extra[-cap:]
             curv = None if curv is None else curv[-cap:]
             self._buckets += k - cap
             k = cap
@@ -231,6 +268,7 @@ class ViewFeed:
         self._t[both] = np.concatenate([t_last, t_last])
         put(self._codes, codes)
         put(self._res, res)
+        put(self._extra, extra)
         if curv is not None:
             put(self._curv, curv)
             tips = self.reconstructor.shape_xy(curv[:, -1, :].astype(np.float64))[:, -1, :]
@@ -246,7 +284,7 @@ class ViewFeed:
         with self._lock:
             if self._newest is None or self._version == since_version:
                 return None
-            seq, t_dev, t_host, codes, res, filt, curv, xy, ok = self._newest
+            seq, t_dev, t_host, codes, res, filt, curv, xy, ok, force, act = self._newest
             nb = min(self._buckets, self.capacity)
             start = (self._buckets - nb) % self.capacity
             sl = slice(start, start + nb)
@@ -254,6 +292,8 @@ class ViewFeed:
             tr_codes = self._codes[sl].reshape(2 * nb, self.n_channels).copy()
             tr_res = self._res[sl].reshape(2 * nb, self.n_segments).copy()
             tr_curv = self._curv[sl].reshape(2 * nb, self.n_segments).copy() if self._has_curv else None
+            tr_extra = self._extra[sl].reshape(2 * nb, 2)
+            has_force, has_act = self._has_extra
             trail = None
             if self._has_curv:
                 k = min(nb, self.trail_buckets)
@@ -277,6 +317,10 @@ class ViewFeed:
                 trace_resistance_ohm=tr_res,
                 trace_curvature_per_m=tr_curv,
                 chain_ok=ok,
+                force_n=None if force is None else force.copy(),
+                actuation=act,
+                trace_force_n=tr_extra[:, 0].copy() if has_force else None,
+                trace_actuation=tr_extra[:, 1].copy() if has_act else None,
             )
 
 
@@ -334,6 +378,8 @@ class DisplayChain:
             filtered_ohm=out.filtered_ohm,
             curvature_per_m=out.curvature_per_m,
             chain_ok=out.chain_ok,
+            force_n=out.force_n,
+            actuation=out.actuation,
         )
         with self._lock:
             self._recent.append(out.filtered_ohm)

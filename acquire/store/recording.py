@@ -42,6 +42,7 @@ __all__ = [
     "open_recording",
     "create_layout",
     "create_derived",
+    "DERIVED_OPTIONAL",
     "pack_xy",
     "check_label_text",
     "software_version",
@@ -144,13 +145,19 @@ def create_layout(
     counters.attrs["about"] = "cumulative counters, one row per flush; the last row is the final count"
 
 
-def create_derived(f: h5py.File, *, n_segments: int, s_m: np.ndarray, tap_index: np.ndarray) -> int:
-    """Create /derived for a calibration: curvature (N,S), s_m (P,), xy (N,P,2).
+def create_derived(
+    f: h5py.File, *, n_segments: int, s_m: np.ndarray, tap_index: np.ndarray, with_force: bool = False,
+    actuation_unit: str | None = None,
+) -> int:
+    """Create /derived for a calibration: curvature (N,S), s_m (P,), xy (N,P,2), and optionally the force.
 
     ``s_m`` and ``tap_index`` are the reconstructor's (its points may run on
     past the sensor into a fingertip); the file keeps the points along the
     sensor only, so ``s_m`` ends at the sensor length as the layout says.
-    Returns P, the number of points per frame to write.
+    ``with_force`` (the calibration has a force model) adds ``force_n``
+    float32 (N, 2), N; ``actuation_unit`` (not None: the rig has
+    ``[actuation]``, whose ``unit`` it is) adds ``actuation`` float32 (N,) in
+    that unit. Returns P, the number of points per frame to write.
     """
     tap_index = np.asarray(tap_index, dtype=np.int64)
     n_points = int(tap_index[-1]) + 1
@@ -162,7 +169,18 @@ def create_derived(f: h5py.File, *, n_segments: int, s_m: np.ndarray, tap_index:
     xy = _growing(g, "xy", dtype=np.float32, row_shape=(n_points, 2), units="m", compress=True,
                   chunk_rows=max(256, (256 << 10) // (8 * n_points)))  # ~256 KiB: deflate works on long runs
     xy.attrs["mantissa_bits"] = XY_MANTISSA_BITS
+    if with_force:
+        force = _growing(g, "force_n", dtype=np.float32, row_shape=(2,), units="N", compress=True)
+        force.attrs["about"] = "estimated force at the sensor's far end, base frame (x, y), N"
+    if actuation_unit is not None:
+        act = _growing(g, "actuation", dtype=np.float32, compress=True)
+        act.attrs["units"] = str(actuation_unit)
+        act.attrs["about"] = "actuation input in the rig's unit ([actuation] of rig_toml)"
     return n_points
+
+
+#: per-frame datasets of /derived besides curvature and xy, present when computed
+DERIVED_OPTIONAL = ("force_n", "actuation")
 
 
 #: shape points keep this many of float32's 23 mantissa bits (relative precision 2^-14: under 4 um
@@ -231,8 +249,9 @@ class Recording:
             for name in ("text", "t_start_s", "t_end_s"):
                 self.file["labels"][name].refresh()
             if "derived" in self.file:
-                for name in ("curvature", "xy"):
-                    self.file["derived"][name].refresh()
+                for name in ("curvature", "xy") + DERIVED_OPTIONAL:
+                    if name in self.file["derived"]:
+                        self.file["derived"][name].refresh()
 
     @property
     def n_frames(self) -> int:
