@@ -18,7 +18,9 @@ Usage (from the repository root)::
 Existing files are not replaced unless ``--force`` is given. The device's
 time stamps advance at the nominal rate whatever ``--time-scale`` is (it
 only makes the device send faster than real time, and the host clock
-column then runs slow against the device clock). A real-time run takes about 35 s.
+column then runs slow against the device clock). A real-time run takes about 90 s.
+The finger's strip is the virtual finger's default real strip (creep,
+hysteresis, drift), so the holds wait for the creep to settle.
 """
 from __future__ import annotations
 
@@ -43,9 +45,11 @@ from acquire.virtual.builtin import BUILTIN_SEED  # noqa: E402
 RIG_PATH = REPO / "acquire" / "rigs" / "demo_finger.toml"
 RECORDING = "demo_grasp.h5"
 CALIBRATION = "demo_calibration.json"
-RATE_HZ = 1000.0
+RATE_HZ = 500.0  # half the live default: the longer holds of a real strip stay under 2 MB
 SEED = BUILTIN_SEED  # the built-in calibration's finger: replay falls back to it
-SETTLE_S = 0.4  # between moving onto a jig and pressing the label button
+# between moving onto a jig and pressing the label button: the real strip creeps (tau about 4 s), so a
+# person waits until the reading has settled (1.5 tau: common practice, no source)
+SETTLE_S = 6.0
 HOLD_S = 1.5
 MOVING_S = 12.0
 #: the jigs, in the order the finger visits them

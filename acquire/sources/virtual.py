@@ -26,6 +26,10 @@ class VirtualOptions:
         ``grasp`` or ``sweep``.
     faults : acquire.virtual.Faults or None
         Simulated wiring and link faults.
+    strip : acquire.virtual.StripSettings or None
+        Real strip behaviour (creep, hysteresis, drift; the finger's default) or ideal.
+    mechanics : dict or None
+        Bending stiffness, actuation gain and pressure of the simulated finger.
     """
 
     rate_hz: float = 1000.0
@@ -33,6 +37,8 @@ class VirtualOptions:
     hold: str | None = None
     scenario: str = "grasp"
     faults: object = None
+    strip: object = None
+    mechanics: object = None
 
 
 # ----------------------------------------------------------------------------- the feed
@@ -57,5 +63,5 @@ def virtual_options_from_args(args, rig: Rig) -> VirtualOptions:
     """
     from acquire.virtual.cli import finger_settings_from_args
 
-    return VirtualOptions(**finger_settings_from_args(args, rig))
+    return VirtualOptions(**finger_settings_from_args(args, rig, extended=True))
 

@@ -2,8 +2,10 @@
 
 The calibration (``builtin_calibration.json`` beside this module) was fitted by
 :func:`make_builtin_calibration` from jig holds of the virtual finger itself:
-the default finger (seed :data:`BUILTIN_SEED`, 12-bit ADC) pressed onto jigs
-of known curvature, read through the built-in rig's divider, fitted with
+the default finger (seed :data:`BUILTIN_SEED`, 12-bit ADC, the default real
+strip: creep, hysteresis, drift) pressed onto jigs of known curvature one
+after another in frame order, read through the built-in rig's divider, the
+steady part of each hold fitted with
 :func:`acquire.core.calibration.fit_calibration` like any lab calibration.
 Regenerate it (after a change to the finger's electrics) with::
 
@@ -46,7 +48,7 @@ JIG_LABELS = ("flat", "curvature=10/m", "radius=50mm", "radius=30mm", "radius=20
               "curvature=-10/m", "radius=-50mm", "radius=-30mm", "radius=-20mm", "flat")
 _FIRMWARE = "tapcurve-virtual"
 _RATE_HZ = 1000.0
-_HOLD_S = 1.5
+_HOLD_S = 24.0  # long enough for the default creep (tau about 4 s) to settle: 6 tau
 _ADC_BITS = 12
 
 
@@ -102,25 +104,27 @@ def builtin_calibration(rig: Rig, *, hello: dict | None = None) -> Calibration |
     return _load()
 
 
-def _jig_hold(model, label: str, readout: DividerReadout, index: int) -> Hold:
+def _jig_hold(model, label: str, readout: DividerReadout, index: int, strip) -> Hold:
+    """One hold, frames in order through the real strip's ``strip`` stream; the steady part is kept."""
     n = int(_HOLD_S * _RATE_HZ)
-    t = index * 10.0 + np.arange(n) / _RATE_HZ
+    t = index * _HOLD_S + np.arange(n) / _RATE_HZ
     held = model.with_hold(label)
-    r = readout.resistance_ohm(held.codes(t, frame_index=np.arange(n) + index * n))
+    r = readout.resistance_ohm(held.codes(t, frame_index=np.arange(n) + index * n, strip=strip))
     keep = steady_part(t, r, float(t[0]), float(t[-1]))
     return Hold(reference_per_m=np.full(model.rig.n_segments, parse_hold_label(label)),
                 resistance_ohm=r[keep], label=label)
 
 
 def make_builtin_calibration(*, seed: int = BUILTIN_SEED) -> Calibration:
-    """Fit the built-in calibration from simulated jig holds of the default finger (pure, a few seconds)."""
+    """Fit the built-in calibration from simulated jig holds of the default finger's real strip (pure, seconds)."""
     from acquire.virtual.model import FingerModel
 
     rig = load_rig(None)
     model = FingerModel(rig=rig, seed=seed, adc_bits=_ADC_BITS)
+    strip = model.real_strip().stream(rate_hz=_RATE_HZ)
     readout = DividerReadout.from_rig(rig, adc_bits=_ADC_BITS)
-    holds = [_jig_hold(model, label, readout, i) for i, label in enumerate(JIG_LABELS)]
-    provenance = [{"path": f"virtual finger seed {seed}, simulated jig holds {', '.join(JIG_LABELS)}",
+    holds = [_jig_hold(model, label, readout, i, strip) for i, label in enumerate(JIG_LABELS)]
+    provenance = [{"path": f"virtual finger seed {seed} (real strip), simulated jig holds {', '.join(JIG_LABELS)}",
                    "sha256": "", "holds": list(JIG_LABELS)}]
     cal, _ = fit_calibration(holds, rig=rig, recordings=provenance, degree=3)
     return Calibration.from_json(cal.to_json(), source=BUILTIN_SOURCE)

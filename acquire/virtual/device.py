@@ -1,22 +1,21 @@
 """The virtual finger as a device on a real pseudo-terminal, speaking wire protocol v1.
 
-One device thread owns the pty: it reads host command lines, answers them,
-and while streaming generates frames in chunks (paced by the wall clock times
-``time_scale``), encodes them in bulk and writes them through a bounded
-transmit buffer as a microcontroller would. The host opens ``path``, a
-symlink that stays put while the pty behind it comes and goes.
+One device thread (a :class:`~acquire.session.worker.Worker`) owns the pty: it
+reads host command lines, answers them, and while streaming generates frames
+in chunks (paced by the wall clock times ``time_scale``), encodes them in bulk
+and writes them through a bounded transmit buffer as a microcontroller would
+(:mod:`acquire.virtual.link`). The host opens ``path``, a symlink that stays
+put while the pty behind it comes and goes. The hello sent at boot usually
+lands before a host opens the port, and pyserial flushes input on open: a
+host asks ``HELLO?``.
 
-The device keeps its own fd of the pty's slave side open, so the master
-never sees EIO while no host has the port open; bytes written then wait in
-the pty (and, once it is full, the transmit buffer drops whole packets as a
-board's would). The hello sent at boot usually lands before a host opens the
-port, and pyserial flushes input on open: a host asks ``HELLO?``.
+The real strip's memory (:mod:`acquire.virtual.strip`) is one stream per
+VirtualFinger, fed in frame order by the device thread (it lives on across
+reboots: the strip is not the board). With ``markers_path`` a camera films the
+finger's true shape while it streams (:mod:`acquire.virtual.camera`).
 """
 from __future__ import annotations
 
-import datetime
-import errno
-import json
 import math
 import os
 import select
@@ -24,7 +23,6 @@ import shutil
 import tempfile
 import threading
 import time
-import tty
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -34,23 +32,20 @@ import firmware_protocol as fp
 
 from acquire.errors import UserError
 from acquire.rig import Rig, load_rig
-from acquire.core.labels import parse_hold_label
-from acquire.virtual.model import SCENARIOS, Faults, FingerModel
+from acquire.session.worker import Worker
+from acquire.virtual.camera import Camera, CameraSettings, MarkerWriter
+from acquire.virtual.link import FATE_DROP, FATE_NAMES, FATE_OVERFLOW, PtyLink
+from acquire.virtual.model import SCENARIOS, Faults, FingerModel, check_hold_label
+from acquire.virtual.strip import StripSettings
+from acquire.virtual.truth import DEMO_TEXT, DEVICE_NAME, TruthWriter
 
 __all__ = ["VirtualFinger", "DEVICE_NAME", "FATE_NAMES"]
 
-#: the ``device`` key of the hello
-DEVICE_NAME = "virtual finger (demo)"
 _FIRMWARE = "tapcurve-virtual 1.0 (simulated)"
-_DEMO = "one finger of a greenhouse tomato-picking gripper (made up for the demo)"
-#: what became of each generated frame (truth file ``fate`` values)
-FATE_NAMES = ("sent", "corrupted on the wire", "dropped on the wire", "dropped: transmit buffer full")
-_FATE_SENT, _FATE_CORRUPT, _FATE_DROP, _FATE_OVERFLOW = range(4)
-
 _MIN_RATE_HZ = 0.1
-_MAX_LINE = 200  # a command line longer than this is noise
 _MAX_CHUNK = 8192  # frames generated at most per pass
 _MAX_LAG_S = 1.0  # a generator this far behind (wall s) skips ahead
+_CODES_KEPT = 1 << 18  # frames of codes kept per boot for truth_for (the real strip cannot be replayed)
 
 
 @dataclass
@@ -64,7 +59,7 @@ class _Segment:
     model: FingerModel
 
 
-class VirtualFinger:
+class VirtualFinger(Worker):
     """A simulated sensor board on a pseudo-terminal.
 
     Parameters (keyword-only)
@@ -73,11 +68,17 @@ class VirtualFinger:
         Default: the built-in demo rig. Sets channels and electrics.
     rate_hz : float
         Sample rate at boot (``RATE`` changes it until the next boot).
-    adc_bits, seed, hold, scenario
+    adc_bits, seed, hold, scenario, noise_lsb
         Passed to :class:`FingerModel`.
     faults : Faults, optional
         Electrical faults act in the model; ``corrupt_rate``, ``drop_rate``,
         ``vanish_every_s`` and ``outage_s`` act on the link here.
+    strip : StripSettings, optional
+        The strip's creep, hysteresis and drift (default: a real strip);
+        ``StripSettings(mode="ideal")`` gives the static law alone.
+    mechanics : dict, optional
+        More :class:`FingerModel` keywords (``bending_stiffness_nm2``,
+        ``actuation_gain_nm_per_kpa``, ``pressure_kpa``).
     time_scale : float
         Device seconds per wall second (> 1: time stamps advance at the
         nominal rate, frames leave faster).
@@ -86,6 +87,11 @@ class VirtualFinger:
         removed on stop).
     truth_path : str or Path, optional
         HDF5 file that receives per-frame ground truth as it goes.
+    markers_path : str or Path, optional
+        New marker CSV the camera fills while the device streams; complete
+        and closed at :meth:`stop`. Must not exist.
+    camera : CameraSettings, optional
+        The camera's clock, pose and imperfections (default: the defaults).
     tx_buffer_bytes : int
         Transmit buffer; whole sample packets that do not fit are dropped.
     tick_s : float
@@ -93,28 +99,17 @@ class VirtualFinger:
         rates the period grows to hold about 256 frames, at most 20 ms.
 
     Thread use: the public methods may be called from any thread; the pty,
-    the model evaluation and the truth file belong to the device thread.
+    the model evaluation, the strip's state, the truth and marker files belong
+    to the device thread.
     """
 
-    def __init__(
-        self,
-        *,
-        rig: Rig | None = None,
-        rate_hz: float = 1000.0,
-        adc_bits: int = 12,
-        seed: int = 0,
-        faults: Faults | None = None,
-        hold: str | None = None,
-        scenario: str = "grasp",
-        time_scale: float = 1.0,
-        link_path: str | os.PathLike | None = None,
-        truth_path: str | os.PathLike | None = None,
-        tx_buffer_bytes: int = 65536,
-        tick_s: float = 0.005,
-        max_rate_hz: float = 50000.0,
-        noise_lsb: float = 1.2,
-        clock_start_s: float = 0.0,
-    ):
+    def __init__(self, *, rig: Rig | None = None, rate_hz: float = 1000.0, adc_bits: int = 12, seed: int = 0,
+                 faults: Faults | None = None, hold: str | None = None, scenario: str = "grasp",
+                 strip: StripSettings | None = None, mechanics: dict | None = None, time_scale: float = 1.0,
+                 link_path=None, truth_path=None, markers_path=None, camera: CameraSettings | None = None,
+                 tx_buffer_bytes: int = 65536, tick_s: float = 0.005, max_rate_hz: float = 50000.0,
+                 noise_lsb: float = 1.2, clock_start_s: float = 0.0):
+        super().__init__(name="virtual-finger")
         self.rig = rig if rig is not None else load_rig(None)
         self.faults = faults if faults is not None else Faults()
         self.max_rate_hz = float(max_rate_hz)
@@ -128,55 +123,43 @@ class VirtualFinger:
         if 11 + 2 * self.rig.n_channels > 253:
             raise UserError(f"{self.rig.source}: the virtual finger sends at most 121 channels")
         if hold is not None:
-            parse_hold_label(hold)
+            check_hold_label(hold)
+        if not (clock_start_s >= 0 and math.isfinite(clock_start_s)):
+            raise UserError(f"clock_start_s {clock_start_s!r}: must be a number >= 0")
         self.boot_rate_hz = rate_hz
         self.time_scale = float(time_scale)
         self.seed = int(seed)
         self.scenario = scenario
-        self.tx_buffer_bytes = int(tx_buffer_bytes)
         self.tick_s = float(tick_s)
-        if not (clock_start_s >= 0 and math.isfinite(clock_start_s)):
-            raise UserError(f"clock_start_s {clock_start_s!r}: must be a number >= 0")
+        self.strip_settings = (strip if strip is not None else StripSettings()).check()
         # what the device's microsecond counter reads at boot (it wraps at 2**32 us, 71.6 min)
         self._clock_start_us = int(round(clock_start_s * 1e6))
-        self._base_model = FingerModel(
-            rig=self.rig, seed=seed, adc_bits=adc_bits, scenario=scenario, hold=hold,
-            faults=self.faults, noise_lsb=noise_lsb,
-        )
+        self._base_model = FingerModel(rig=self.rig, seed=seed, adc_bits=adc_bits, scenario=scenario, hold=hold,
+                                       faults=self.faults, noise_lsb=noise_lsb, **(mechanics or {}))
+        self._real_strip = self._base_model.real_strip(self.strip_settings) if self.strip_settings.real else None
         self._hold = self._base_model.hold
-        self._pkt_len = 11 + 2 * self.rig.n_channels + 2  # COBS adds one byte, plus the 0x00
-
+        self._tx_buffer_bytes = int(tx_buffer_bytes)
         self._own_dir = None
-        if link_path is None:
-            self._link = None
-        else:
-            link = Path(link_path)
-            if not link.parent.is_dir():
-                raise UserError(f"{link}: folder {link.parent} does not exist")
-            if link.exists() and not link.is_symlink():
-                raise UserError(f"{link}: exists and is not a symlink; will not replace it")
-            self._link = link
-        self._truth_path = None if truth_path is None else Path(truth_path)
-        if self._truth_path is not None and not self._truth_path.parent.is_dir():
-            raise UserError(f"{self._truth_path}: folder {self._truth_path.parent} does not exist")
-
+        self._link = None if link_path is None else _checked_link(Path(link_path))
+        self._truth_path = None if truth_path is None else _checked_new(Path(truth_path), exist_ok=True)
+        self._markers_path = None if markers_path is None else _checked_new(Path(markers_path), exist_ok=False)
+        self._camera = Camera(camera or CameraSettings(seed=self.seed), rig=self.rig) if markers_path else None
         self._lock = threading.Condition()
         self._counters = {
             "frames_generated": 0, "frames_sent": 0, "frames_dropped_tx": 0, "frames_late": 0,
             "frames_skipped_late": 0, "frames_lost_outage": 0, "packets_corrupted": 0,
             "packets_dropped": 0, "boots": 0, "vanishes": 0, "commands": 0, "command_errors": 0,
-            "hellos_sent": 0, "bytes_sent": 0, "bytes_received": 0, "cpu_s": 0.0,
+            "hellos_sent": 0, "bytes_sent": 0, "bytes_received": 0, "cpu_s": 0.0, "camera_frames": 0,
         }
         self._segments: dict[int, list[_Segment]] = {}
+        self._codes_log: dict[int, list] = {}
         self._requests: list = []
-        self._thread = None
-        self._stop = threading.Event()
         self._ready = threading.Event()
         self._gone = threading.Event()
-        self._error: BaseException | None = None
         self._port_up = False
         self._port_name = None
         self._boot = 0
+        self._started = False
         self._wake_r, self._wake_w = -1, -1
 
     # ------------------------------------------------------------------ public
@@ -218,43 +201,43 @@ class VirtualFinger:
         gap in seq), ``frames_lost_outage`` (sampled while the port was away
         without a reboot), ``boots``, ``vanishes``, ``commands``,
         ``command_errors``, ``hellos_sent``, ``bytes_sent``,
-        ``bytes_received``, ``cpu_s`` (device thread CPU time).
+        ``bytes_received``, ``cpu_s`` (device thread CPU time),
+        ``camera_frames`` (marker rows written).
         """
         with self._lock:
             return dict(self._counters)
 
-    @property
-    def error(self) -> BaseException | None:
-        """What stopped the device thread, if it failed."""
-        return self._error
-
     def start(self) -> "VirtualFinger":
-        """Start the device thread; returns when the port exists."""
-        if self._thread is not None or self._stop.is_set():
+        """Start the device thread; returns when the port exists (RuntimeError if it failed to)."""
+        if self._started:
             raise RuntimeError("a VirtualFinger starts once; make a new one")
+        self._started = True
         if self._link is None:
             self._own_dir = tempfile.mkdtemp(prefix="tapcurve-virtual-")
             self._link = Path(self._own_dir) / "finger"
         self._wake_r, self._wake_w = os.pipe()
         os.set_blocking(self._wake_r, False)
         os.set_blocking(self._wake_w, False)
-        self._thread = threading.Thread(target=self._run, name="virtual-finger", daemon=True)
-        self._thread.start()
-        if not self._ready.wait(10.0) or self._error is not None:
-            self.stop()
-            raise RuntimeError(f"virtual finger failed to start: {self._error!r}")
+        self.start_thread()
+        if not self._ready.wait(10.0) or self.error is not None:
+            error = self.error
+            self.error = None
+            self._cleanup(timeout_s=5.0)
+            raise RuntimeError(f"virtual finger failed to start: {error}")
         return self
 
     def stop(self, *, timeout_s: float = 10.0) -> None:
-        """Stop the thread, close the pty and the truth file, remove the symlink.
+        """Stop the thread, close the pty, the truth and marker files, remove the symlink.
 
-        Raises RuntimeError if the device thread had failed.
+        Raises RuntimeError if the device thread had failed (or did not stop in time).
         """
+        self._cleanup(timeout_s=timeout_s)
+        if self.error is not None:
+            raise RuntimeError(f"the virtual finger's device thread failed: {self.error}")
+
+    def _cleanup(self, *, timeout_s: float) -> None:
         if self._thread is not None:
-            self._stop.set()
-            self._wake()
-            self._thread.join(timeout_s)
-            self._thread = None
+            self.stop_thread(timeout_s=timeout_s)
         for fd in (self._wake_r, self._wake_w):
             if fd >= 0:
                 os.close(fd)
@@ -262,8 +245,6 @@ class VirtualFinger:
         if self._own_dir is not None:
             shutil.rmtree(self._own_dir, ignore_errors=True)
             self._own_dir = None
-        if self._error is not None:
-            raise RuntimeError("the virtual finger's device thread failed") from self._error
 
     def __enter__(self) -> "VirtualFinger":
         return self.start()
@@ -272,13 +253,13 @@ class VirtualFinger:
         self.stop()
 
     def set_hold(self, label: str | None) -> None:
-        """Press the finger onto a jig (label grammar: :mod:`acquire.core.labels`), or
+        """Press the finger onto a jig or hold a force (label grammar: :mod:`acquire.core.labels`), or
         release it (None). Takes effect from the next generated frame.
 
         Raises UserError for a bad label (in the caller's thread).
         """
         if label is not None:
-            parse_hold_label(label)
+            check_hold_label(label)
         self._request(("hold", label))
 
     def vanish(self, *, outage_s: float, reboot: bool = True, timeout_s: float = 5.0) -> None:
@@ -301,7 +282,7 @@ class VirtualFinger:
         with self._lock:
             while not (self._port_up and (boot is None or self._boot >= boot)):
                 left = deadline - time.monotonic()
-                if left <= 0 or self._error is not None:
+                if left <= 0 or self.error is not None:
                     return False
                 self._lock.wait(min(left, 0.1))
             return True
@@ -319,40 +300,39 @@ class VirtualFinger:
         Returns
         -------
         dict
-            As :meth:`FingerModel.truth` (``t_device_s``, ``curvature_per_m``,
-            ``tip_xy_m``, ``moment_nm``, ``load_n``) plus ``codes`` (N, C): the
-            codes the device made for these frames. Arrays owned by the caller.
+            As :meth:`FingerModel.truth` plus ``codes`` (N, C): the codes the
+            device made for these frames (kept for the last 2**18 frames of
+            each boot; older ones are recomputed with the ideal strip, exact
+            only with ``strip`` ideal). Arrays owned by the caller.
         """
         seq = np.atleast_1d(np.asarray(seq, dtype=np.int64))
         with self._lock:
             segs = list(self._segments.get(int(boot), ()))
+            log = list(self._codes_log.get(int(boot), ()))
         if not segs:
             raise KeyError(f"no frames were made in boot {boot}")
         if seq.size and seq.min() < 0:
             raise ValueError("seq must not be negative")
         firsts = np.array([s.first for s in segs])
-        which = np.searchsorted(firsts, seq, side="right") - 1
-        which = np.maximum(which, 0)
-        parts = {}
-        order = []
+        which = np.maximum(np.searchsorted(firsts, seq, side="right") - 1, 0)
+        out = None
         for w in np.unique(which).tolist():
             sel = np.flatnonzero(which == w)
             seg = segs[w]
             t = seg.t0_s + (seq[sel] - seg.first) / seg.rate_hz
             tr = seg.model.truth(t)
             tr["codes"] = seg.model.codes(t, frame_index=seq[sel])
-            parts[w] = (sel, tr)
-            order.append(w)
-        n = seq.shape[0]
-        out = {}
-        for key, value in parts[order[0]][1].items():
-            out[key] = np.empty((n,) + value.shape[1:], dtype=value.dtype)
-        for sel, tr in parts.values():
+            if out is None:
+                out = {k: np.empty((seq.shape[0],) + v.shape[1:], dtype=v.dtype) for k, v in tr.items()}
             for key, value in tr.items():
                 out[key][sel] = value
+        _fill_logged_codes(out["codes"], seq, log)
         return out
 
     # ------------------------------------------------------------------ plumbing
+
+    def on_stop_requested(self) -> None:
+        self._wake()
 
     def _wake(self) -> None:
         if self._wake_w >= 0:
@@ -373,25 +353,36 @@ class VirtualFinger:
 
     # ------------------------------------------------------------------ device thread
 
-    def _run(self) -> None:
-        self._master = self._slave = -1
-        self._truth = None
+    def run(self) -> None:
+        """The device thread: boot, open the port, serve until stopped (failures land in :attr:`error`)."""
+        self._truth = self._markers = None
+        self._port = PtyLink(self._link, tx_buffer_bytes=self._tx_buffer_bytes,
+                             packet_bytes=11 + 2 * self.rig.n_channels + 2, count=self._count)
         try:
             if self._truth_path is not None:
-                self._truth = _TruthWriter(self._truth_path, self)
+                self._truth = TruthWriter(self._truth_path, self)
+            if self._markers_path is not None:
+                self._markers = MarkerWriter(self._markers_path, self._camera)
+            self._strip = None if self._real_strip is None else self._real_strip.stream(rate_hz=self.boot_rate_hz)
+            self._camera_t0 = 0.0  # device time of this boot on the camera's (continuous) time line
             self._boot_device()
             self._open_port()
             self._ready.set()
             self._loop()
-        except BaseException as exc:  # reported by stop()
-            self._error = exc
+        finally:
             self._ready.set()
+            self._close_all()
+
+    def _close_all(self) -> None:
+        try:
+            self._close_port()
         finally:
             try:
-                self._close_port()
-            finally:
                 if self._truth is not None:
                     self._truth.close()
+            finally:
+                if self._markers is not None:
+                    self._markers.close()
                 with self._lock:
                     self._counters["cpu_s"] = time.thread_time()
                     self._lock.notify_all()
@@ -403,6 +394,9 @@ class VirtualFinger:
             self._counters["boots"] += 1
             boot = self._boot
             self._segments[boot] = []
+            self._codes_log[boot] = []
+        if boot > 1:
+            self._camera_t0 += self._device_now()
         self._boot_wall = time.monotonic()
         self._model = self._base_model.with_run(boot).with_hold(self._hold)
         self._rate_hz = self.boot_rate_hz
@@ -410,64 +404,34 @@ class VirtualFinger:
         self._next_frame = 0  # frames made in this boot (the next seq, unwrapped)
         self._seg = None
         self._seg_done = 0  # frames made in the current segment
-        self._tx = bytearray()
-        self._rx = bytearray()
-        self._overflow_pending = False
+        self._port.reset_buffers()
         self._rng = np.random.default_rng([self.seed, boot, 0x71E])
         self._hello_due = True
 
     def _open_port(self) -> None:
-        master, slave = os.openpty()
-        tty.setraw(slave)
-        os.set_blocking(master, False)
-        name = os.ttyname(slave)
-        tmp = self._link.with_name(f".{self._link.name}.{os.getpid()}.tmp")
-        try:
-            tmp.unlink()
-        except FileNotFoundError:
-            pass
-        os.symlink(name, tmp)
-        os.replace(tmp, self._link)
-        self._master, self._slave = master, slave
-        self._port_since = time.monotonic()
+        name = self._port.open()
         with self._lock:
             self._port_up = True
             self._port_name = name
             self._lock.notify_all()
         if self._hello_due:
             self._hello_due = False
-            self._send_control(fp.Hello(self._hello_info()))
+            self._port.send_control(fp.Hello(self._hello_info()))
 
     def _close_port(self) -> None:
         with self._lock:
             self._port_up = False
             self._port_name = None
-        try:
-            if self._link is not None and self._link.is_symlink():
-                self._link.unlink()
-        except FileNotFoundError:
-            pass
-        for fd in (self._master, self._slave):
-            if fd >= 0:
-                os.close(fd)
-        self._master = self._slave = -1
+        self._port.close()
 
     def _hello_info(self) -> dict:
         rate = self._rate_hz
         info = {
-            "protocol": fp.PROTOCOL_VERSION,
-            "firmware": _FIRMWARE,
-            "adc_bits": self._base_model.adc_bits,
-            "channels": self.rig.n_channels,
-            "rate_hz": int(rate) if float(rate).is_integer() else rate,
-            "device": DEVICE_NAME,
-            "demo": _DEMO,
-            "serial": f"VF-{self.seed & 0xFFFF:04X}",
-            "boot": self._boot,
-            "scenario": self.scenario,
-            "hold": self._hold,
-            "rig": self.rig.name,
-            "time_scale": self.time_scale,
+            "protocol": fp.PROTOCOL_VERSION, "firmware": _FIRMWARE, "adc_bits": self._base_model.adc_bits,
+            "channels": self.rig.n_channels, "rate_hz": int(rate) if float(rate).is_integer() else rate,
+            "device": DEVICE_NAME, "demo": DEMO_TEXT, "serial": f"VF-{self.seed & 0xFFFF:04X}",
+            "boot": self._boot, "scenario": self.scenario, "hold": self._hold, "rig": self.rig.name,
+            "time_scale": self.time_scale, "strip": self.strip_settings.mode,
         }
         injected = {k: v for k, v in self.faults.as_dict().items() if v != getattr(Faults(), k)}
         if injected:
@@ -482,59 +446,65 @@ class VirtualFinger:
         poller.register(self._wake_r, select.POLLIN)
         registered = -1
         next_tick = time.monotonic()
-        while not self._stop.is_set():
-            if registered != self._master:
+        while not self.stopping:
+            if registered != self._port.master:
                 if registered >= 0:
                     try:
                         poller.unregister(registered)
                     except KeyError:
                         pass
-                poller.register(self._master, select.POLLIN)
-                registered = self._master
+                poller.register(self._port.master, select.POLLIN)
+                registered = self._port.master
             self._handle_requests()
-            if self._stop.is_set():
+            if self.stopping:
                 break
-            if self._master != registered:
+            if self._port.master != registered:
                 continue  # a vanish replaced the port
             now = time.monotonic()
             every = self.faults.vanish_every_s
-            if every is not None and now - self._port_since >= every:
+            if every is not None and now - self._port.since >= every:
                 self._vanish(float(self.faults.outage_s), True)
                 continue
             if self._streaming and now >= next_tick:
                 self._generate()
                 next_tick = now + self._tick()
-            self._flush_tx()
+            self._port.flush()
             if self._truth is not None:
                 self._truth.maybe_flush()
-            mask = select.POLLIN | (select.POLLOUT if self._tx else 0)
-            poller.modify(self._master, mask)
+            poller.modify(self._port.master, select.POLLIN | (select.POLLOUT if self._port.tx else 0))
             wait = 0.1 if not self._streaming else max(0.0, next_tick - time.monotonic())
             if every is not None:
-                wait = min(wait, max(0.0, self._port_since + every - time.monotonic()))
-            for fd, ev in poller.poll(wait * 1000.0):
-                if fd == self._wake_r:
-                    try:
-                        while os.read(self._wake_r, 4096):
-                            pass
-                    except BlockingIOError:
-                        pass
-                elif ev & select.POLLIN:
-                    self._read_commands()
+                wait = min(wait, max(0.0, self._port.since + every - time.monotonic()))
+            self._poll(poller, wait)
             with self._lock:
                 self._counters["cpu_s"] = time.thread_time()
+
+    def _poll(self, poller, wait_s: float) -> None:
+        for fd, ev in poller.poll(wait_s * 1000.0):
+            if fd == self._wake_r:
+                try:
+                    while os.read(self._wake_r, 4096):
+                        pass
+                except BlockingIOError:
+                    pass
+            elif ev & select.POLLIN:
+                for line in self._port.read_lines():
+                    self._command(line)
 
     def _handle_requests(self) -> None:
         with self._lock:
             items, self._requests = self._requests, []
         for item in items:
             if item[0] == "hold":
-                self._hold = item[1]
-                self._model = self._base_model.with_run(self._boot).with_hold(self._hold)
-                if self._streaming:
-                    self._new_segment(continuous=True)
+                self._set_hold(item[1])
             elif item[0] == "vanish":
                 self._vanish(item[1], item[2])
+
+    def _set_hold(self, label) -> None:
+        self._hold = label
+        self._model = self._base_model.with_run(self._boot).with_hold(self._hold)
+        if self._streaming:
+            self._new_segment(continuous=True)
 
     def _vanish(self, outage_s: float, reboot: bool) -> None:
         if self._truth is not None:
@@ -543,7 +513,7 @@ class VirtualFinger:
         self._count(vanishes=1)
         self._gone.set()
         back = time.monotonic() + outage_s
-        while not self._stop.is_set():
+        while not self.stopping:
             left = back - time.monotonic()
             if left <= 0:
                 break
@@ -554,13 +524,13 @@ class VirtualFinger:
             for item in pending:
                 self._hold = item[1]
                 self._model = self._base_model.with_run(self._boot).with_hold(self._hold)
-        if self._stop.is_set():
+        if self.stopping:
             return
         if reboot:
             self._boot_device()
         else:
             # the board kept sampling while its port was away: those frames are gone
-            self._tx.clear()
+            self._port.tx.clear()
             if self._streaming:
                 due = self._frames_due()
                 self._seg_done += due
@@ -575,6 +545,8 @@ class VirtualFinger:
             t0 = self._device_now()
         self._seg = _Segment(self._next_frame, t0, self._rate_hz, self._model)
         self._seg_done = 0
+        if self._strip is not None:
+            self._strip.set_rate(self._rate_hz)
         with self._lock:
             self._segments[self._boot].append(self._seg)
 
@@ -592,15 +564,13 @@ class VirtualFinger:
         due = self._frames_due()
         if due <= 0:
             return
-        seg = self._seg
-        wall_period = 1.0 / (seg.rate_hz * self.time_scale)
-        lag_wall = (due - 1) * wall_period
-        if lag_wall > _MAX_LAG_S:
+        wall_period = 1.0 / (self._seg.rate_hz * self.time_scale)
+        if (due - 1) * wall_period > _MAX_LAG_S:
             # too far behind to catch up: those samples are never taken
             skip = due - max(1, int(0.1 / wall_period))
             self._seg_done += skip
             self._next_frame += skip
-            self._overflow_pending = True
+            self._port.overflow_pending = True
             self._count(frames_skipped_late=skip)
             due -= skip
         while due > 0:
@@ -611,227 +581,107 @@ class VirtualFinger:
     def _make_frames(self, n: int, wall_period: float) -> None:
         seg = self._seg
         frame = np.arange(self._next_frame, self._next_frame + n, dtype=np.int64)
-        local = np.arange(self._seg_done, self._seg_done + n, dtype=np.float64)
-        t = seg.t0_s + local / seg.rate_hz
-        codes = seg.model.codes(t, frame_index=frame)
+        t = seg.t0_s + np.arange(self._seg_done, self._seg_done + n, dtype=np.float64) / seg.rate_hz
+        codes = seg.model.codes(t, frame_index=frame, strip=self._strip)
+        self._log_codes(frame[0], codes)
         # lateness of each sample in wall seconds; batching by tick is the normal
         lag = (self._device_now() - t) / self.time_scale
         status = np.where(lag > 2.0 * self._tick() + wall_period, fp.STATUS_LATE, 0).astype(np.uint8)
         fate = np.zeros(n, dtype=np.uint8)
-        f = self.faults
-        if f.drop_rate > 0:
-            fate[self._rng.random(n) < f.drop_rate] = _FATE_DROP
-        keep = np.flatnonzero(fate == 0)
-        sent, n_corrupt = self._queue(keep, frame, t, status, codes, fate)
+        if self.faults.drop_rate > 0:
+            fate[self._rng.random(n) < self.faults.drop_rate] = FATE_DROP
+        sent, n_corrupt = self._port.queue_samples(
+            np.flatnonzero(fate == 0), frame=frame, t_us=np.rint(t * 1e6).astype(np.int64) + self._clock_start_us,
+            status=status, codes=codes, fate=fate, corrupt_rate=self.faults.corrupt_rate, rng=self._rng)
         if self._truth is not None:
             self._truth.append(self._boot, frame, t, seg.model, codes, status, fate)
+        if self._markers is not None:
+            # the camera films on its own time line, which goes on across reboots
+            rows = self._markers.film(_Shifted(seg.model, self._camera_t0), self._camera_t0 + t[0],
+                                      self._camera_t0 + t[-1] + 1.0 / seg.rate_hz)
+            self._count(camera_frames=rows)
         self._next_frame += n
         self._seg_done += n
         self._count(
             frames_generated=n, frames_sent=sent,
-            frames_dropped_tx=int(np.count_nonzero(fate == _FATE_OVERFLOW)),
-            packets_dropped=int(np.count_nonzero(fate == _FATE_DROP)),
+            frames_dropped_tx=int(np.count_nonzero(fate == FATE_OVERFLOW)),
+            packets_dropped=int(np.count_nonzero(fate == FATE_DROP)),
             packets_corrupted=int(n_corrupt), frames_late=int(np.count_nonzero(status & fp.STATUS_LATE)),
         )
 
-    def _queue(self, keep, frame, t, status, codes, fate) -> tuple[int, int]:
-        """Put packets ``keep`` into the transmit buffer, draining it into the
-        pty between pieces as a UART drains while the next sample is taken.
-        What finds no room is dropped (fate 3) and flags the next packet sent.
-        Returns (packets queued, packets corrupted)."""
-        f = self.faults
-        pos = 0
-        n_corrupt = 0
-        while pos < keep.size:
-            self._flush_tx()
-            room = max(0, self.tx_buffer_bytes - len(self._tx)) // self._pkt_len
-            if room == 0:
-                break
-            part = keep[pos : pos + room]
-            pos += part.size
-            if self._overflow_pending:
-                status[part[0]] |= fp.STATUS_TX_OVERFLOW
-                self._overflow_pending = False
-            wire = fp.encode_samples_bulk(
-                seq=frame[part], t_us=np.rint(t[part] * 1e6).astype(np.int64) + self._clock_start_us,
-                status=status[part], codes=codes[part],
-            )
-            if f.corrupt_rate > 0:
-                hit = np.flatnonzero(self._rng.random(part.size) < f.corrupt_rate)
-                if hit.size:
-                    buf = np.frombuffer(bytearray(wire), dtype=np.uint8).reshape(part.size, self._pkt_len)
-                    for row in hit.tolist():
-                        k = int(self._rng.integers(1, 4))
-                        where = self._rng.integers(0, self._pkt_len, k)
-                        buf[row, where] ^= self._rng.integers(1, 256, k).astype(np.uint8)
-                    wire = buf.tobytes()
-                    fate[part[hit]] = _FATE_CORRUPT
-                    n_corrupt += hit.size
-            self._tx += wire
-        if pos < keep.size:
-            fate[keep[pos:]] = _FATE_OVERFLOW
-            self._overflow_pending = True
-        return pos, n_corrupt
+    def _log_codes(self, first: int, codes: np.ndarray) -> None:
+        with self._lock:
+            log = self._codes_log[self._boot]
+            log.append((int(first), codes))
+            while sum(c.shape[0] for _, c in log) - log[0][1].shape[0] >= _CODES_KEPT:
+                log.pop(0)
 
-    def _send_control(self, packet) -> None:
-        # replies and hellos are always queued: they are small and rare
-        self._tx += fp.encode_packet(packet)
-        if isinstance(packet, fp.Hello):
-            self._count(hellos_sent=1)
-        self._flush_tx()
-
-    def _flush_tx(self) -> None:
-        while self._tx and self._master >= 0:
-            try:
-                n = os.write(self._master, self._tx[:65536])
-            except BlockingIOError:
-                return
-            except OSError as exc:
-                if exc.errno in (errno.EIO, errno.EAGAIN):
-                    return
-                raise
-            if n <= 0:
-                return
-            del self._tx[:n]
-            self._count(bytes_sent=n)
-
-    def _read_commands(self) -> None:
-        try:
-            data = os.read(self._master, 4096)
-        except (BlockingIOError, InterruptedError):
-            return
-        except OSError as exc:
-            if exc.errno == errno.EIO:
-                return
-            raise
-        if not data:
-            return
-        self._count(bytes_received=len(data))
-        self._rx += data
-        while True:
-            nl = self._rx.find(b"\n")
-            if nl < 0:
-                break
-            line = bytes(self._rx[:nl]).strip()
-            del self._rx[: nl + 1]
-            if line:
-                self._command(line)
-        if len(self._rx) > _MAX_LINE:
-            self._rx.clear()
-            self._count(commands=1, command_errors=1)
-            self._send_control(fp.Reply("ERR line too long"))
-
-    def _command(self, line: bytes) -> None:
+    def _command(self, line: bytes | None) -> None:
         self._count(commands=1)
+        if line is None:
+            self._count(command_errors=1)
+            self._port.send_control(fp.Reply("ERR line too long"))
+            return
         try:
             word, arg = fp.parse_command(line)
         except fp.CommandError as exc:
             self._count(command_errors=1)
-            self._send_control(fp.Reply(f"ERR {exc}"))
+            self._port.send_control(fp.Reply(f"ERR {exc}"))
             return
         if word == "HELLO?":
-            self._send_control(fp.Hello(self._hello_info()))
+            self._port.send_control(fp.Hello(self._hello_info()))
         elif word == "START":
             if not self._streaming:
                 self._streaming = True
                 self._new_segment(continuous=False)
-            self._send_control(fp.Reply("OK START"))
+            self._port.send_control(fp.Reply("OK START"))
         elif word == "STOP":
             self._streaming = False
-            self._send_control(fp.Reply("OK STOP"))
+            self._port.send_control(fp.Reply("OK STOP"))
         elif word == "RATE":
-            if not _MIN_RATE_HZ <= arg <= self.max_rate_hz:
-                self._count(command_errors=1)
-                self._send_control(fp.Reply(
-                    f"ERR rate {arg:g} Hz out of range {_MIN_RATE_HZ:g}..{self.max_rate_hz:g}"))
-                return
-            self._rate_hz = float(arg)
-            if self._streaming:
-                self._new_segment(continuous=True)
-            text = f"{int(arg)}" if float(arg).is_integer() else f"{arg:g}"
-            self._send_control(fp.Reply(f"OK RATE {text}"))
+            self._set_rate(arg)
 
-
-class _TruthWriter:
-    """Per-frame ground truth into a chunked HDF5 file (device thread only)."""
-
-    def __init__(self, path: Path, dev: VirtualFinger):
-        import h5py
-
-        self._f = h5py.File(path, "w")
-        f = self._f
-        s = dev.rig.n_segments
-        c = dev.rig.n_channels
-        f.attrs["layout"] = "tapcurve-virtual-truth"
-        f.attrs["layout_version"] = 1
-        f.attrs["created_utc"] = datetime.datetime.now(datetime.timezone.utc).isoformat()
-        f.attrs["device"] = DEVICE_NAME
-        f.attrs["demo"] = _DEMO
-        f.attrs["scenario"] = dev.scenario
-        f.attrs["seed"] = dev.seed
-        f.attrs["time_scale"] = dev.time_scale
-        f.attrs["rig_toml"] = dev.rig.text
-        f.attrs["faults_json"] = json.dumps(dev.faults.as_dict())
-        f.attrs["fate_names"] = json.dumps(list(FATE_NAMES))
-        specs = {
-            "boot": ("i4", (), None),
-            "seq": ("i8", (), None),
-            "t_device_s": ("f8", (), "s"),
-            "curvature_per_m": ("f8", (s,), "1/m"),
-            "tip_xy_m": ("f8", (2,), "m"),
-            "moment_nm": ("f8", (), "N m"),
-            "load_n": ("f8", (), "N"),
-            "hold_curvature_per_m": ("f4", (), "1/m"),
-            "codes": ("u2", (c,), None),
-            "status": ("u1", (), None),
-            "fate": ("u1", (), None),
-        }
-        self._ds = {}
-        for name, (dtype, tail, units) in specs.items():
-            ds = f.create_dataset(name, shape=(0,) + tail, maxshape=(None,) + tail, dtype=dtype,
-                                  chunks=(4096,) + tail)
-            if units:
-                ds.attrs["units"] = units
-            self._ds[name] = ds
-        self._ds["seq"].attrs["meaning"] = "unwrapped sequence number, 0 at each boot"
-        self._ds["hold_curvature_per_m"].attrs["meaning"] = "jig curvature when held, NaN otherwise"
-        self._pending: list[dict] = []
-        self._n_pending = 0
-        self._last_flush = time.monotonic()
-
-    def append(self, boot, frame, t, model, codes, status, fate) -> None:
-        tr = model.truth(t)
-        n = frame.shape[0]
-        hold = np.nan if model.hold_curvature_per_m is None else model.hold_curvature_per_m
-        self._pending.append({
-            "boot": np.full(n, boot), "seq": frame, "t_device_s": t,
-            "curvature_per_m": tr["curvature_per_m"], "tip_xy_m": tr["tip_xy_m"],
-            "moment_nm": tr["moment_nm"], "load_n": tr["load_n"],
-            "hold_curvature_per_m": np.full(n, hold), "codes": codes, "status": status, "fate": fate,
-        })
-        self._n_pending += n
-        if self._n_pending >= 16384:
-            self.flush()
-
-    def maybe_flush(self) -> None:
-        if self._pending and time.monotonic() - self._last_flush > 0.5:
-            self.flush()
-
-    def flush(self) -> None:
-        self._last_flush = time.monotonic()
-        if not self._pending:
+    def _set_rate(self, arg: float) -> None:
+        if not _MIN_RATE_HZ <= arg <= self.max_rate_hz:
+            self._count(command_errors=1)
+            self._port.send_control(fp.Reply(f"ERR rate {arg:g} Hz out of range {_MIN_RATE_HZ:g}..{self.max_rate_hz:g}"))
             return
-        for name, ds in self._ds.items():
-            block = np.concatenate([p[name] for p in self._pending])
-            n0 = ds.shape[0]
-            ds.resize(n0 + block.shape[0], axis=0)
-            ds[n0:] = block
-        self._pending = []
-        self._n_pending = 0
-        self._f.flush()
+        self._rate_hz = float(arg)
+        if self._streaming:
+            self._new_segment(continuous=True)
+        text = f"{int(arg)}" if float(arg).is_integer() else f"{arg:g}"
+        self._port.send_control(fp.Reply(f"OK RATE {text}"))
 
-    def close(self) -> None:
-        try:
-            self.flush()
-        finally:
-            self._f.close()
+
+class _Shifted:
+    """A model seen on the camera's time line: ``shape(t)`` of the model at ``t - offset``."""
+
+    def __init__(self, model: FingerModel, offset_s: float):
+        self._model, self._offset, self.rig = model, float(offset_s), model.rig
+
+    def shape(self, t_s):
+        return self._model.shape(np.asarray(t_s) - self._offset)
+
+
+def _fill_logged_codes(codes: np.ndarray, seq: np.ndarray, log: list) -> None:
+    """Overwrite ``codes`` rows with the codes the device made, where they are still kept."""
+    for first, block in log:
+        sel = np.flatnonzero((seq >= first) & (seq < first + block.shape[0]))
+        if sel.size:
+            codes[sel] = block[seq[sel] - first]
+
+
+def _checked_link(link: Path) -> Path:
+    if not link.parent.is_dir():
+        raise UserError(f"{link}: folder {link.parent} does not exist")
+    if link.exists() and not link.is_symlink():
+        raise UserError(f"{link}: exists and is not a symlink; will not replace it")
+    return link
+
+
+def _checked_new(path: Path, *, exist_ok: bool) -> Path:
+    if not path.parent.is_dir():
+        raise UserError(f"{path}: folder {path.parent} does not exist")
+    if not exist_ok and os.path.lexists(path):
+        raise UserError(f"{path}: exists; will not write over it")
+    return path

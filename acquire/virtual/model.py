@@ -1,44 +1,44 @@
-"""The virtual finger's physics: mechanics, time courses and readout electrics.
+"""The virtual finger's model: time courses, mechanics, electrics and ADC glued per frame.
 
 Demo scenario, made up for the demo: one finger of a greenhouse tomato-picking
 gripper. A soft bending actuator closes the finger around a fruit; the fruit
 pushes back on the fingertip.
 
-Mechanics
-    A planar elastica (Euler-Bernoulli bending, large deflection, inextensible)
-    of a cantilever clamped at s = 0 heading +x, bending stiffness EI, loaded by
-    a uniform actuation moment M_a (a pressurised bending actuator adds M_a/EI
-    curvature everywhere) and a tip force of size P in a fixed direction in
-    space. The bending moment at s is ``EI kappa(s) = M_a + (r_F - r(s)) x F``
-    where r_F is the point of contact: the end of the sensor plus a rigid tip
-    of ``load_lever_m`` along the sensor's end heading. Differentiating gives
-    ``theta'' = -(P/EI) sin(phi - theta)`` with theta(0) = 0 and
-    ``theta'(L) = M_a/EI + (P/EI) lever sin(phi - theta(L))``.
-    The boundary value problem is solved by vectorised shooting (RK4 plus
-    Newton with the variational equation) on a grid over (M_a, P) once per
-    parameter set (cached), then interpolated per frame.
+Rooms: :mod:`~acquire.virtual.elastica` (the mechanics: a planar
+Euler-Bernoulli elastica under a uniform actuation moment and a tip force),
+:mod:`~acquire.virtual.scenarios` (time courses),
+:mod:`~acquire.virtual.electrics` (the static strip law, divider, ADC noise),
+:mod:`~acquire.virtual.strip` (a real strip's creep, hysteresis and drift:
+stateful, applied by the device in frame order), :mod:`~acquire.virtual.faults`.
 
-Electrics
-    Each segment's resistance rises with local curvature (weaker and saturating
-    for the opposite bend), with a seeded spread of flat resistance and gain
-    per segment; the local response is integrated over the segment. Then the
-    ratiometric divider of CONTRACTS.md section 2, ADC quantisation and noise.
+Actuation: ``M_a = gain * p`` uniform along the finger (free curvature
+``kappa0 = M_a / EI``); the scenarios other than ``grasp-force`` are written
+as moments and their pressure is ``M_a / gain``. Tip force: size P along a
+fixed direction (``load_angle_rad`` from +x), at the contact point (the end of
+the sensor plus ``load_lever_m`` of rigid tip). A force hold (``force=1.2N``)
+pushes the sensor's far end along +y (the label grammar's force direction)
+at a set pressure.
 
-Everything is a pure function of device time (and of the frame index for
-noise): the same frames come out for any chunking.
+Everything here is a pure function of device time (and of the frame index for
+noise): the same frames come out for any chunking. The static law
+(:meth:`FingerModel.segment_ohm`) is the ideal strip; the real strip path is
+:meth:`FingerModel.codes` with ``strip=`` a :class:`~acquire.virtual.strip.StripStream`.
 """
 from __future__ import annotations
 
-import functools
 import math
-import threading
-from dataclasses import dataclass, fields
 
 import numpy as np
 
-from acquire.core.labels import parse_hold_label
+from acquire.core.labels import parse_force_label, parse_hold_label
 from acquire.errors import UserError
 from acquire.rig import Rig, load_rig
+from acquire.virtual.elastica import (ElasticaSolution, arc_xy, bilinear, elastica_tables, simpson_mean,
+                                      solve_elastica)
+from acquire.virtual.electrics import StaticStrip, divider_tap_volts, noise_key, normals
+from acquire.virtual.faults import Faults
+from acquire.virtual.scenarios import SCENARIOS, FreeMotion, GraspCycles, GraspForce, sweep
+from acquire.virtual.strip import RealStrip, StripSettings, StripStream
 
 __all__ = [
     "FingerModel",
@@ -47,515 +47,29 @@ __all__ = [
     "solve_elastica",
     "parse_hold_label",
     "SCENARIOS",
+    "DEFAULT_EI_NM2",
+    "DEFAULT_ACTUATION_GAIN_NM_PER_KPA",
+    "check_hold_label",
 ]
 
-#: time courses the model can play
-SCENARIOS = ("grasp", "sweep")
-
 _TWO_PI = 2.0 * math.pi
+#: EI of the demo finger, N m^2: a silicone finger about 20 mm x 12 mm (made up; order of
+#: magnitude E ~ 1 MPa, I = b h^3 / 12 ~ 3e-9 m^4: common practice, no source)
+DEFAULT_EI_NM2 = 3.0e-3
+#: actuation moment per kPa, N m / kPa (made up: 60 kPa bends the free demo finger to about 20 1/m)
+DEFAULT_ACTUATION_GAIN_NM_PER_KPA = 1.0e-3
+_BEND_RANGE_RAD = (-5.0, 5.0)  # the moment grid, as M L / EI (0.1 rad steps): +-52 1/m over the demo finger
 
 
-# --------------------------------------------------------------------------- labels
+def check_hold_label(label: str) -> tuple[str, float]:
+    """What a hold label asks of the finger: ``("shape", curvature 1/m)`` or ``("force", N along +y)``.
 
-
-# The jig label grammar is defined once, in acquire.core.labels; parse_hold_label
-# is re-exported here for code that imports it from this module.
-
-
-# --------------------------------------------------------------------------- faults
-
-
-@dataclass(frozen=True)
-class Faults:
-    """Wiring and link faults the virtual finger can show.
-
-    Attributes
-    ----------
-    open_tap : int or None
-        The wire from tap k to its ADC input is broken: that input floats
-        (drifts and picks up mains and noise near a seeded level).
-    short_taps : (int, int) or None
-        Taps a < b shorted together (b may be S, the grounded end): segments
-        a .. b-1 read 0 ohm.
-    noisy_channel : int or None
-        Channel with large extra noise (``noisy_lsb`` RMS).
-    stuck_channel : int or None
-        Channel whose code never changes.
-    corrupt_rate : float
-        Fraction of sample packets with flipped bytes on the wire.
-    drop_rate : float
-        Fraction of sample packets never sent (gaps in seq).
-    vanish_every_s : float or None
-        The port disappears this often (wall-clock s after each return).
-    outage_s : float
-        How long the port stays away (wall-clock s).
-    noisy_lsb : float
-        RMS of the noisy channel's extra noise, in LSB.
+    Raises LabelError (a UserError) naming the label when it states neither. Pure.
     """
-
-    open_tap: int | None = None
-    short_taps: tuple[int, int] | None = None
-    noisy_channel: int | None = None
-    stuck_channel: int | None = None
-    corrupt_rate: float = 0.0
-    drop_rate: float = 0.0
-    vanish_every_s: float | None = None
-    outage_s: float = 1.0
-    noisy_lsb: float = 40.0
-
-    def check(self, rig: Rig, *, names: dict | None = None) -> None:
-        """Raise :class:`UserError` if a fault does not fit ``rig``.
-
-        ``names`` maps field names to how the message names them (the command
-        line passes its option names); the field name is used otherwise.
-        """
-        names = names or {}
-
-        def fail(key: str, value, why: str) -> None:
-            raise UserError(f"{names.get(key, 'faults.' + key)} {value}: {why}")
-
-        s = rig.n_segments
-        c = rig.n_channels
-        if self.open_tap is not None and not 0 <= int(self.open_tap) < s:
-            fail("open_tap", self.open_tap, f"the rig's measured taps are 0..{s - 1}")
-        if self.short_taps is not None:
-            a, b = (int(v) for v in self.short_taps)
-            if not 0 <= a < b <= s:
-                fail("short_taps", f"{a},{b}", f"need 0 <= A < B <= {s} (tap {s} is ground)")
-        for key in ("noisy_channel", "stuck_channel"):
-            value = getattr(self, key)
-            if value is not None and not 0 <= int(value) < c:
-                fail(key, value, f"the rig's channels are 0..{c - 1}")
-        for key in ("corrupt_rate", "drop_rate"):
-            value = float(getattr(self, key))
-            if not 0.0 <= value < 1.0:
-                fail(key, value, "must be a fraction, 0 <= p < 1")
-        if self.vanish_every_s is not None and not float(self.vanish_every_s) > 0:
-            fail("vanish_every_s", self.vanish_every_s, "must be positive seconds")
-        if not float(self.outage_s) >= 0 or not math.isfinite(float(self.outage_s)):
-            fail("outage_s", self.outage_s, "must be zero or positive seconds")
-        if not float(self.noisy_lsb) >= 0:
-            fail("noisy_lsb", self.noisy_lsb, "must not be negative")
-
-    def as_dict(self) -> dict:
-        """Plain values, for a hello or an HDF5 attribute."""
-        out = {}
-        for f in fields(self):
-            v = getattr(self, f.name)
-            out[f.name] = list(v) if isinstance(v, tuple) else v
-        return out
-
-
-# --------------------------------------------------------------------------- elastica
-
-
-@dataclass(frozen=True)
-class ElasticaSolution:
-    """Equilibrium shapes of the cantilever, one per load case.
-
-    Arrays are new and owned by the caller.
-
-    Attributes
-    ----------
-    s_m : ndarray, shape (P,)
-        Arc length of the nodes, 0 first, ``length_m`` last.
-    theta_rad, kappa_per_m : ndarray, shape (K, P)
-        Heading and curvature at the nodes.
-    xy_m : ndarray, shape (K, P, 2)
-        Node positions in the base frame.
-    converged : ndarray of bool, shape (K,)
-    """
-
-    s_m: np.ndarray
-    theta_rad: np.ndarray
-    kappa_per_m: np.ndarray
-    xy_m: np.ndarray
-    converged: np.ndarray
-
-
-def _rk4_pass(h, m_bar, p_bar, phi, lever_bar, k0, *, keep_nodes: bool):
-    """Integrate theta'' = -p sin(phi - theta) from s = 0 over steps ``h``.
-
-    Non-dimensional (s/L); all arrays of shape (K,). Carries the variational
-    state (dtheta/dk0, dtheta'/dk0) for Newton, and x, y when ``keep_nodes``.
-    """
-    u = np.zeros_like(k0)
-    v = k0.copy()
-    z = np.zeros_like(k0)
-    w = np.ones_like(k0)
-    x = np.zeros_like(k0)
-    y = np.zeros_like(k0)
-    nodes = None
-    if keep_nodes:
-        nodes = np.empty((4, h.shape[0] + 1, k0.shape[0]))
-        nodes[:, 0] = (u, v, x, y)
-    for i, hi in enumerate(h.tolist()):
-        # stage 1
-        a1 = phi - u
-        su1, cu1 = np.sin(a1), np.cos(a1)
-        du1, dv1 = v, -p_bar * su1
-        dz1, dw1 = w, p_bar * cu1 * z
-        # stage 2
-        u2 = u + 0.5 * hi * du1
-        v2 = v + 0.5 * hi * dv1
-        z2 = z + 0.5 * hi * dz1
-        w2 = w + 0.5 * hi * dw1
-        a2 = phi - u2
-        su2, cu2 = np.sin(a2), np.cos(a2)
-        dv2 = -p_bar * su2
-        dw2 = p_bar * cu2 * z2
-        # stage 3
-        u3 = u + 0.5 * hi * v2
-        v3 = v + 0.5 * hi * dv2
-        z3 = z + 0.5 * hi * w2
-        w3 = w + 0.5 * hi * dw2
-        a3 = phi - u3
-        su3, cu3 = np.sin(a3), np.cos(a3)
-        dv3 = -p_bar * su3
-        dw3 = p_bar * cu3 * z3
-        # stage 4
-        u4 = u + hi * v3
-        v4 = v + hi * dv3
-        z4 = z + hi * w3
-        w4 = w + hi * dw3
-        a4 = phi - u4
-        su4, cu4 = np.sin(a4), np.cos(a4)
-        dv4 = -p_bar * su4
-        dw4 = p_bar * cu4 * z4
-        if keep_nodes:
-            # x' = cos(theta) = cos(phi - a), y' = sin(theta)
-            cp, sp = math.cos(phi), math.sin(phi)
-            c1, c2, c3, c4 = (cp * cu + sp * su for cu, su in ((cu1, su1), (cu2, su2), (cu3, su3), (cu4, su4)))
-            s1, s2, s3, s4 = (sp * cu - cp * su for cu, su in ((cu1, su1), (cu2, su2), (cu3, su3), (cu4, su4)))
-            x = x + hi / 6.0 * (c1 + 2 * c2 + 2 * c3 + c4)
-            y = y + hi / 6.0 * (s1 + 2 * s2 + 2 * s3 + s4)
-        u = u + hi / 6.0 * (du1 + 2 * v2 + 2 * v3 + v4)
-        v = v + hi / 6.0 * (dv1 + 2 * dv2 + 2 * dv3 + dv4)
-        z = z + hi / 6.0 * (dz1 + 2 * w2 + 2 * w3 + w4)
-        w = w + hi / 6.0 * (dw1 + 2 * dw2 + 2 * dw3 + dw4)
-        if keep_nodes:
-            nodes[:, i + 1] = (u, v, x, y)
-    a = phi - u
-    residual = v - m_bar - p_bar * lever_bar * np.sin(a)
-    slope = w + p_bar * lever_bar * np.cos(a) * z
-    return residual, slope, nodes
-
-
-def _newton(h, m_bar, p_bar, phi, lever_bar, k0, *, tol=1e-11, max_iter=40):
-    k0 = np.array(k0, dtype=np.float64, copy=True)
-    done = np.zeros(k0.shape, dtype=bool)
-    for _ in range(max_iter):
-        residual, slope, _ = _rk4_pass(h, m_bar, p_bar, phi, lever_bar, k0, keep_nodes=False)
-        done = np.abs(residual) < tol
-        if done.all():
-            break
-        safe = np.where(np.abs(slope) > 1e-12, slope, 1e-12)
-        # damped: a step of more than half a radian of root curvature (per L) is cut
-        step = np.clip(residual / safe, -0.5, 0.5)
-        k0 = k0 - np.where(done, 0.0, step)
-    return k0, done
-
-
-def _node_grid(segment_lengths_m: np.ndarray, *, steps_total: int = 96) -> tuple[np.ndarray, np.ndarray]:
-    """Node arc lengths (taps included) and the node index of each tap.
-
-    Each segment gets an even number of steps (Simpson), about proportional to
-    its length.
-    """
-    seg = np.asarray(segment_lengths_m, dtype=np.float64)
-    length = seg.sum()
-    n_sub = np.maximum(2, 2 * np.ceil(steps_total * seg / length / 2.0)).astype(int)
-    s = [0.0]
-    tap_nodes = [0]
-    start = 0.0
-    for lk, nk in zip(seg.tolist(), n_sub.tolist()):
-        s.extend((start + lk * np.arange(1, nk + 1) / nk).tolist())
-        start += lk
-        tap_nodes.append(len(s) - 1)
-    s_arr = np.asarray(s)
-    s_arr[-1] = length
-    return s_arr, np.asarray(tap_nodes)
-
-
-def solve_elastica(
-    *,
-    length_m: float,
-    bending_stiffness_nm2: float,
-    moment_nm,
-    load_n,
-    load_angle_rad: float = -math.pi / 2,
-    load_lever_m: float = 0.0,
-    s_m: np.ndarray | None = None,
-    initial_kappa0_per_m=None,
-) -> ElasticaSolution:
-    """Solve the cantilever elastica for K load cases at once.
-
-    Parameters
-    ----------
-    length_m : float
-        Flexible length (the sensor).
-    bending_stiffness_nm2 : float
-        EI in N m^2.
-    moment_nm, load_n : array-like, shape (K,) or scalar
-        Uniform actuation moment (N m, positive turns toward +y) and tip force
-        size (N, along ``load_angle_rad`` from +x).
-    load_lever_m : float
-        Rigid tip beyond the sensor's end at which the force acts (0: at the end).
-    s_m : array, optional
-        Node arc lengths, 0 first, ``length_m`` last (default: 97 even nodes).
-    initial_kappa0_per_m : array-like, optional
-        Starting guess of the root curvature (continuation).
-
-    Runs in the caller's thread. Pure.
-    """
-    ei = float(bending_stiffness_nm2)
-    length = float(length_m)
-    m_arr, p_arr = np.broadcast_arrays(np.atleast_1d(np.asarray(moment_nm, dtype=np.float64)),
-                                       np.atleast_1d(np.asarray(load_n, dtype=np.float64)))
-    m_bar = m_arr * length / ei
-    p_bar = p_arr * length**2 / ei
-    if s_m is None:
-        s_m = np.linspace(0.0, length, 97)
-    s_m = np.asarray(s_m, dtype=np.float64)
-    h = np.diff(s_m) / length
-    lever_bar = float(load_lever_m) / length
-    phi = float(load_angle_rad)
-    if initial_kappa0_per_m is None:
-        # small-deflection guess: theta' = m + p (lever + 1 - s) sin(phi)
-        k0 = m_bar + p_bar * (lever_bar + 1.0) * math.sin(phi)
-    else:
-        k0 = np.broadcast_to(np.asarray(initial_kappa0_per_m, dtype=np.float64) * length, m_bar.shape)
-    k0, ok = _newton(h, m_bar, p_bar, phi, lever_bar, k0)
-    _, _, nodes = _rk4_pass(h, m_bar, p_bar, phi, lever_bar, k0, keep_nodes=True)
-    theta = nodes[0].T.copy()
-    kappa = nodes[1].T / length
-    xy = np.stack([nodes[2].T, nodes[3].T], axis=-1) * length
-    return ElasticaSolution(s_m=s_m.copy(), theta_rad=theta, kappa_per_m=kappa, xy_m=xy, converged=ok)
-
-
-@dataclass(frozen=True)
-class _Tables:
-    """Elastica over the (moment, load) grid, reduced to what frames need.
-
-    Row r = i * n_load + j is grid point (moment_grid[i], load_grid[j]).
-    """
-
-    moment_grid: np.ndarray  # (nm,)
-    load_grid: np.ndarray  # (np,)
-    s_m: np.ndarray  # (P,)
-    tap_nodes: np.ndarray  # (S+1,)
-    theta_taps: np.ndarray  # (nm*np, S+1)
-    xy_nodes: np.ndarray  # (nm*np, P*2)
-    basis: np.ndarray  # (4, nm*np, S): segment means of k+, k+^2, k-, k-^2
-
-
-@functools.lru_cache(maxsize=8)
-def _elastica_tables(
-    segment_lengths_m: tuple, ei: float, phi: float, lever_m: float,
-    moment_lo: float, moment_hi: float, n_moment: int, load_hi: float, n_load: int,
-) -> _Tables:
-    """Solve the grid once per parameter set (continuation in load)."""
-    seg = np.asarray(segment_lengths_m)
-    length = float(seg.sum())
-    s_m, tap_nodes = _node_grid(seg)
-    moment_grid = np.linspace(moment_lo, moment_hi, n_moment)
-    load_grid = np.linspace(0.0, load_hi, n_load)
-    theta = np.empty((n_moment, n_load, s_m.shape[0]))
-    kappa = np.empty_like(theta)
-    xy = np.empty((n_moment, n_load, s_m.shape[0], 2))
-    # load columns in order from 0, guessing each from the previous two, so
-    # every point sits on the branch reached by loading the closed finger
-    prev = [moment_grid / ei, None]
-    for j, load in enumerate(load_grid.tolist()):
-        if j >= 2:
-            guess = 2.0 * prev[0] - prev[1]
-        else:
-            guess = prev[0]
-        sol = _continue_in_load(length, ei, moment_grid, load_grid[j - 1] if j else 0.0, load,
-                                phi, lever_m, s_m, prev[0], guess)
-        theta[:, j] = sol.theta_rad
-        kappa[:, j] = sol.kappa_per_m
-        xy[:, j] = sol.xy_m
-        prev = [sol.kappa_per_m[:, 0], prev[0]]
-    rows = n_moment * n_load
-    theta = theta.reshape(rows, -1)
-    kappa = kappa.reshape(rows, -1)
-    basis = np.empty((4, rows, seg.shape[0]))
-    kp = np.maximum(kappa, 0.0)
-    kn = np.minimum(kappa, 0.0)
-    for b, f in enumerate((kp, kp * kp, kn, kn * kn)):
-        for k in range(seg.shape[0]):
-            a, e = tap_nodes[k], tap_nodes[k + 1]
-            basis[b, :, k] = _simpson_mean(f[:, a : e + 1], s_m[a : e + 1])
-    out = _Tables(
-        moment_grid=moment_grid, load_grid=load_grid, s_m=s_m, tap_nodes=tap_nodes,
-        theta_taps=np.ascontiguousarray(theta[:, tap_nodes]),
-        xy_nodes=np.ascontiguousarray(xy.reshape(rows, -1)),
-        basis=basis,
-    )
-    for arr in (out.moment_grid, out.load_grid, out.s_m, out.tap_nodes, out.theta_taps, out.xy_nodes, out.basis):
-        arr.setflags(write=False)  # shared between models through the cache
-    return out
-
-
-def _continue_in_load(length, ei, moments, load_from, load_to, phi, lever_m, s_m, k_from, guess):
-    """Solve at ``load_to``; points that fail from ``guess`` are walked there
-    from ``load_from`` (root curvature ``k_from``) in smaller load steps."""
-    sol = solve_elastica(
-        length_m=length, bending_stiffness_nm2=ei, moment_nm=moments, load_n=load_to,
-        load_angle_rad=phi, load_lever_m=lever_m, s_m=s_m, initial_kappa0_per_m=guess,
-    )
-    bad = ~sol.converged
-    for n_sub in (4, 16, 64):
-        if not bad.any():
-            break
-        k = np.asarray(k_from, dtype=np.float64)[bad]
-        ok = np.ones(k.shape, dtype=bool)
-        part = None
-        for load in np.linspace(load_from, load_to, n_sub + 1)[1:].tolist():
-            part = solve_elastica(
-                length_m=length, bending_stiffness_nm2=ei, moment_nm=moments[bad], load_n=load,
-                load_angle_rad=phi, load_lever_m=lever_m, s_m=s_m, initial_kappa0_per_m=k,
-            )
-            ok &= part.converged
-            k = part.kappa_per_m[:, 0]
-        if ok.all():
-            for arr, new in ((sol.theta_rad, part.theta_rad), (sol.kappa_per_m, part.kappa_per_m), (sol.xy_m, part.xy_m)):
-                arr[bad] = new
-            sol.converged[bad] = True
-            bad[:] = False
-    return sol
-
-
-def _simpson_mean(f: np.ndarray, s: np.ndarray) -> np.ndarray:
-    """Mean of f over s (even number of equal steps along the last axis)."""
-    n = s.shape[0] - 1
-    hstep = (s[-1] - s[0]) / n
-    w = np.ones(n + 1)
-    w[1:-1:2] = 4.0
-    w[2:-1:2] = 2.0
-    return (f @ w) * hstep / 3.0 / (s[-1] - s[0])
-
-
-def _bilinear(x: np.ndarray, grid: np.ndarray):
-    """Cell index and weight of x on an even grid (clipped to the grid)."""
-    n = grid.shape[0]
-    pos = (np.clip(x, grid[0], grid[-1]) - grid[0]) / (grid[1] - grid[0])
-    i = np.minimum(pos.astype(np.int64), n - 2)
-    return i, pos - i
-
-
-# --------------------------------------------------------------------------- noise
-
-
-_M1 = np.uint64(0xBF58476D1CE4E5B9)
-_M2 = np.uint64(0x94D049BB133111EB)
-_GOLD = np.uint64(0x9E3779B97F4A7C15)
-
-
-def _mix64(x: np.ndarray) -> np.ndarray:
-    """SplitMix64 finaliser (Steele, Lea & Flood, 'Fast splittable pseudorandom
-    number generators', OOPSLA 2014) on uint64 arrays: counter -> random bits."""
-    z = x + _GOLD
-    z = (z ^ (z >> np.uint64(30))) * _M1
-    z = (z ^ (z >> np.uint64(27))) * _M2
-    return z ^ (z >> np.uint64(31))
-
-
-def _normals(key: int, frame_index: np.ndarray, n_cols: int) -> np.ndarray:
-    """Standard normal deviates, shape (N, n_cols), a pure function of
-    (key, frame index, column): any chunking of frames gives the same values."""
-    fi = np.asarray(frame_index, dtype=np.int64).astype(np.uint64)
-    ctr = fi[:, None] * np.uint64(n_cols) + np.arange(n_cols, dtype=np.uint64)[None, :]
-    bits = _mix64(ctr ^ np.uint64(key & 0xFFFFFFFFFFFFFFFF))
-    u1 = ((bits >> np.uint64(40)).astype(np.float64) + 0.5) * (1.0 / (1 << 24))
-    u2 = (bits & np.uint64(0xFFFFFF)).astype(np.float64) * (1.0 / (1 << 24))
-    # Box-Muller (Box & Muller, Ann. Math. Statist. 1958)
-    return np.sqrt(-2.0 * np.log(u1)) * np.cos(_TWO_PI * u2)
-
-
-def _key(*parts: int) -> int:
-    ss = np.random.SeedSequence([int(p) & 0xFFFFFFFF for p in parts])
-    return int(ss.generate_state(1, dtype=np.uint64)[0])
-
-
-# --------------------------------------------------------------------------- time courses
-
-
-def _smooth(x: np.ndarray) -> np.ndarray:
-    """0 -> 1 step with zero first and second derivative at both ends."""
-    x = np.clip(x, 0.0, 1.0)
-    return x * x * x * (x * (6.0 * x - 15.0) + 10.0)
-
-
-class _GraspCycles:
-    """Seeded grasp cycles: rest open, close, load on the fruit, hold, unload, open.
-
-    Cycle i's values come from its own seeded generator, so any cycle can be
-    made without the ones before; start times are extended lazily (locked:
-    the device thread and test threads evaluate concurrently).
-    """
-
-    _FIELDS = ("t_rest", "d_close", "t_settle", "d_ramp", "t_hold", "d_unload", "d_open",
-               "k_open", "k_close", "load", "trem_hz", "trem_phase")
-
-    def __init__(self, seed: int, run: int):
-        self._seed = int(seed)
-        self._run = int(run)
-        self._lock = threading.Lock()
-        self._cols = {f: np.zeros(0) for f in self._FIELDS}
-        self._start = np.zeros(0)
-        self._end = 0.0
-        self._extend(64)
-
-    def _cycle(self, i: int) -> list:
-        rng = np.random.default_rng([self._seed, self._run, i, 0x6A5D])
-        u = rng.uniform
-        return [
-            u(0.8, 1.6), u(0.45, 0.8), u(0.05, 0.25), u(0.3, 0.6), u(1.0, 2.5), u(0.2, 0.4), u(0.5, 0.8),
-            u(-0.6, -0.25), u(1.55, 2.7), u(0.2, 0.55), u(5.0, 9.0), u(0.0, _TWO_PI),
-        ]
-
-    def _extend(self, n_more: int) -> None:
-        n0 = self._start.shape[0]
-        rows = np.array([self._cycle(i) for i in range(n0, n0 + n_more)])
-        for k, f in enumerate(self._FIELDS):
-            self._cols[f] = np.concatenate([self._cols[f], rows[:, k]])
-        dur = rows[:, :7].sum(axis=1)
-        starts = self._end + np.concatenate([[0.0], np.cumsum(dur)[:-1]])
-        self._start = np.concatenate([self._start, starts])
-        self._end = float(starts[-1] + dur[-1])
-
-    def evaluate(self, t_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Bend angle (rad, pure-moment equivalent over the sensor) and load
-        (fraction of the model's largest load) at times ``t_s``."""
-        t = np.asarray(t_s, dtype=np.float64)
-        with self._lock:
-            t_max = float(t.max()) if t.size else 0.0
-            # the cycle after t_max must exist too: its open level ends this one
-            while self._start[-1] <= t_max:
-                self._extend(max(64, self._start.shape[0]))
-            starts = self._start
-            cols = self._cols
-        i = np.clip(np.searchsorted(starts, t, side="right") - 1, 0, None)
-        tau = t - starts[i]
-        g = {f: cols[f][i] for f in self._FIELDS}
-        k_next = cols["k_open"][i + 1]
-        a_close = g["t_rest"]
-        a_ramp = a_close + g["d_close"] + g["t_settle"]
-        a_unload = a_ramp + g["d_ramp"] + g["t_hold"]
-        a_open = a_unload + g["d_unload"]
-        s_close = _smooth((tau - a_close) / g["d_close"])
-        s_open = _smooth((tau - a_open) / g["d_open"])
-        angle = g["k_open"] + (g["k_close"] - g["k_open"]) * s_close - (g["k_close"] - k_next) * s_open
-        # a small pump ripple on the actuation, a little tremble in the contact
-        angle = angle * (1.0 + 0.004 * np.sin(_TWO_PI * 11.0 * t))
-        on = _smooth((tau - a_ramp) / g["d_ramp"]) - _smooth((tau - a_unload) / g["d_unload"])
-        load = g["load"] * on * (1.0 + 0.05 * np.sin(_TWO_PI * g["trem_hz"] * t + g["trem_phase"]))
-        return angle, load
-
-
-# --------------------------------------------------------------------------- the model
+    force = parse_force_label(label)
+    if force is not None:
+        return "force", force
+    return "shape", parse_hold_label(label)
 
 
 class FingerModel:
@@ -566,51 +80,44 @@ class FingerModel:
     rig : Rig, optional
         Default: the built-in demo rig (``load_rig(None)``).
     seed : int
-        Fixes the sensor's electrical spread, the grasp cycles and the noise.
+        Fixes the sensor's electrical spread, the time courses and the noise.
     adc_bits : int
         ADC resolution (8..16).
-    scenario : "grasp" or "sweep"
-        Time course played when no hold is set.
+    scenario : str
+        Time course played when no hold is set (:data:`SCENARIOS`).
     hold : str or None
-        Jig label (``flat``, ``radius=25mm``, ``curvature=40/m``): the finger
-        is pressed onto a jig of that uniform curvature, with a tiny wobble.
+        A jig label (``flat``, ``radius=25mm``, ``curvature=40/m``: pressed
+        onto a jig of that uniform curvature, with a tiny wobble) or a force
+        label (``force=1.2N``: that force on the sensor's far end along +y,
+        at ``pressure_kpa``).
     faults : Faults, optional
-        Electrical faults (open tap, shorted taps, noisy/stuck channel) act
-        here; link faults are the device's.
+        Electrical faults act here; link faults are the device's.
     run : int
-        Selects another realisation of the time course and noise with the same
-        sensor (the device uses its boot counter).
+        Another realisation of time course and noise with the same sensor.
     bending_stiffness_nm2 : float
-        EI of the finger (default 3e-3 N m^2: a silicone finger about
-        20 mm x 12 mm).
+        EI of the finger, N m^2 (every segment alike).
     load_angle_rad : float
-        Direction of the tip force from +x (default -0.6 rad: the fruit pushes
-        the closed fingertip back outward).
+        Direction of the scenarios' tip force from +x (default -0.6 rad: the
+        fruit pushes the closed fingertip back outward).
     load_lever_m : float, optional
         Rigid tip beyond the sensor at which the force acts (default: the
         rig's ``tip_length_m``).
     noise_lsb : float
-        ADC noise, RMS in LSB.
+        ADC noise, RMS in LSB (the pressure channel too).
+    actuation_gain_nm_per_kpa : float
+        Actuation moment per kPa of pressure.
+    pressure_kpa : float
+        Pressure during a force hold, kPa.
 
     All methods are pure functions of their arguments, safe to call from any
     thread; returned arrays are new and owned by the caller.
     """
 
-    def __init__(
-        self,
-        *,
-        rig: Rig | None = None,
-        seed: int = 0,
-        adc_bits: int = 12,
-        scenario: str = "grasp",
-        hold: str | None = None,
-        faults: Faults | None = None,
-        run: int = 0,
-        bending_stiffness_nm2: float = 3.0e-3,
-        load_angle_rad: float = -0.6,
-        load_lever_m: float | None = None,
-        noise_lsb: float = 1.2,
-    ):
+    def __init__(self, *, rig: Rig | None = None, seed: int = 0, adc_bits: int = 12, scenario: str = "grasp",
+                 hold: str | None = None, faults: Faults | None = None, run: int = 0,
+                 bending_stiffness_nm2: float = DEFAULT_EI_NM2, load_angle_rad: float = -0.6,
+                 load_lever_m: float | None = None, noise_lsb: float = 1.2,
+                 actuation_gain_nm_per_kpa: float = DEFAULT_ACTUATION_GAIN_NM_PER_KPA, pressure_kpa: float = 0.0):
         self.rig = rig if rig is not None else load_rig(None)
         if scenario not in SCENARIOS:
             raise UserError(f"scenario {scenario!r} is not known (known: {', '.join(SCENARIOS)})")
@@ -619,39 +126,32 @@ class FingerModel:
             raise UserError(f"adc_bits {adc_bits}: must be 8..16")
         self.faults = faults if faults is not None else Faults()
         self.faults.check(self.rig)
-        if not bending_stiffness_nm2 > 0:
-            raise UserError(f"bending_stiffness_nm2 {bending_stiffness_nm2}: must be positive")
-        self.seed = int(seed)
-        self.run = int(run)
-        self.adc_bits = adc_bits
-        self.scenario = scenario
+        for name, value in (("bending_stiffness_nm2", bending_stiffness_nm2),
+                            ("actuation_gain_nm_per_kpa", actuation_gain_nm_per_kpa)):
+            if not (math.isfinite(value) and value > 0):
+                raise UserError(f"{name} {value}: must be positive")
+        self.seed, self.run, self.adc_bits, self.scenario = int(seed), int(run), adc_bits, scenario
         self.bending_stiffness_nm2 = float(bending_stiffness_nm2)
+        self.actuation_gain_nm_per_kpa = float(actuation_gain_nm_per_kpa)
+        self.pressure_kpa = float(pressure_kpa)
         self.load_angle_rad = float(load_angle_rad)
         self.load_lever_m = float(self.rig.tip_length_m if load_lever_m is None else load_lever_m)
         self.noise_lsb = float(noise_lsb)
-        self.hold = None
-        self.hold_curvature_per_m = None
-        if hold is not None:
-            self.hold_curvature_per_m = parse_hold_label(hold)
-            self.hold = str(hold).strip()
-
-        seg = self.rig.segment_lengths_m
-        ei = self.bending_stiffness_nm2
-        length = self.rig.sensor_length_m
+        ei, length = self.bending_stiffness_nm2, self.rig.sensor_length_m
         #: bend angle over the sensor (rad) the moment grid covers, as M L / EI
-        self.bend_range_rad = (-1.5, 4.8)
+        self.bend_range_rad = _BEND_RANGE_RAD
         #: largest tip load the grid covers, N (P L^2 / EI = 2: clear of the
         #: snap-through that a strongly curled finger meets under more load)
         self.load_max_n = 2.0 * ei / length**2
-        self._tables = _elastica_tables(
-            tuple(float(v) for v in seg), ei, self.load_angle_rad, self.load_lever_m,
-            ei * self.bend_range_rad[0] / length, ei * self.bend_range_rad[1] / length, 64,
-            self.load_max_n, 33,
+        self._tables = elastica_tables(
+            tuple(float(v) for v in self.rig.segment_lengths_m), ei, self.load_angle_rad, self.load_lever_m,
+            ei * self.bend_range_rad[0] / length, ei * self.bend_range_rad[1] / length, 101, self.load_max_n, 33,
         )
-        self._setup_electrics()
-        self._cycles = _GraspCycles(self.seed, self.run)
-        self._noise_key = _key(self.seed, self.run, 0x4E015E)
-        self._fault_key = _key(self.seed, self.run, 0xFA17)
+        self._static = StaticStrip(n_segments=self.rig.n_segments, segment_ohm_range=self.rig.segment_ohm_range,
+                                   seed=self.seed, basis=self._tables.basis)
+        self._setup_floating()
+        self._set_run(self.run)
+        self._set_hold(hold)
         self._stuck_code = None
         if self.faults.stuck_channel is not None:
             clean = self._channel_volts(np.zeros(1))[0, int(self.faults.stuck_channel)]
@@ -659,25 +159,42 @@ class FingerModel:
 
     # ------------------------------------------------------------------ copies
 
+    def _set_run(self, run: int) -> None:
+        self.run = int(run)
+        self._cycles = GraspCycles(self.seed, self.run)
+        self._free = FreeMotion(self.seed, self.run)
+        self._grasp_force = GraspForce(self.seed, self.run)
+        self._noise_key = noise_key(self.seed, self.run, 0x4E015E)
+        self._fault_key = noise_key(self.seed, self.run, 0xFA17)
+
+    def _set_hold(self, hold: str | None) -> None:
+        self.hold = None
+        self.hold_curvature_per_m = None
+        self.hold_force_n = None
+        self._force_hold = None
+        if hold is None:
+            return
+        kind, value = check_hold_label(hold)
+        if kind == "shape":
+            self.hold_curvature_per_m = value
+        else:
+            force = value
+            self.hold_force_n = force
+            self._force_hold = self._solve_force_hold(force)
+        self.hold = str(hold).strip()
+
     def with_hold(self, hold: str | None) -> "FingerModel":
-        """The same finger with another jig label (or none); shares all tables."""
+        """The same finger with another hold label (or none); shares all tables."""
         new = object.__new__(FingerModel)
         new.__dict__.update(self.__dict__)
-        new.hold = None
-        new.hold_curvature_per_m = None
-        if hold is not None:
-            new.hold_curvature_per_m = parse_hold_label(hold)
-            new.hold = str(hold).strip()
+        new._set_hold(hold)
         return new
 
     def with_run(self, run: int) -> "FingerModel":
         """The same sensor, another realisation of time course and noise."""
         new = object.__new__(FingerModel)
         new.__dict__.update(self.__dict__)
-        new.run = int(run)
-        new._cycles = _GraspCycles(self.seed, new.run)
-        new._noise_key = _key(self.seed, new.run, 0x4E015E)
-        new._fault_key = _key(self.seed, new.run, 0xFA17)
+        new._set_run(run)
         return new
 
     # ------------------------------------------------------------------ properties
@@ -698,37 +215,81 @@ class FingerModel:
     @property
     def flat_ohm(self) -> np.ndarray:
         """Each segment's resistance when flat, ohm (S,); a copy."""
-        return self._r0.copy()
+        return np.array(self._static.r0_ohm)
+
+    @property
+    def static_strip(self) -> StaticStrip:
+        """The memory-free strip law (shared, immutable)."""
+        return self._static
+
+    def real_strip(self, settings: StripSettings | None = None) -> RealStrip:
+        """This sensor's real strip (creep, hysteresis, drift) with ``settings`` (default: the defaults)."""
+        return RealStrip(settings or StripSettings(), span=self._static.calibrated_span(), seed=self.seed)
 
     # ------------------------------------------------------------------ mechanics
+
+    def pressure(self, t_s) -> np.ndarray:
+        """Actuation pressure, kPa, at device times ``t_s`` (s), (N,)."""
+        t = np.asarray(t_s, dtype=np.float64)
+        if self.hold is None and self.scenario == "grasp-force":
+            return self._grasp_force.evaluate(t)[0]
+        return self.inputs(t)[0] / self.actuation_gain_nm_per_kpa
 
     def inputs(self, t_s) -> tuple[np.ndarray, np.ndarray]:
         """Actuation moment (N m) and tip load (N) at device times ``t_s`` (s).
 
-        In hold mode: the moment that would bend the free finger to the jig's
-        curvature, and no tip load.
+        A jig hold: the moment that would bend the free finger to the jig's
+        curvature, and no tip load. A force hold: the set pressure's moment
+        and the set force's size.
         """
         t = np.asarray(t_s, dtype=np.float64)
         ei = self.bending_stiffness_nm2
+        if self._force_hold is not None:
+            m = self.actuation_gain_nm_per_kpa * self.pressure_kpa
+            return np.full(t.shape, m), np.full(t.shape, abs(self.hold_force_n))
         if self.hold is not None:
             return ei * self._hold_kappa(t), np.zeros_like(t)
+        if self.scenario == "grasp-force":
+            p, load = self._grasp_force.evaluate(t)
+            return self.actuation_gain_nm_per_kpa * p, self.load_max_n * load
         per_angle = ei / self.rig.sensor_length_m  # moment per radian of pure-moment bend
         if self.scenario == "sweep":
-            # bend -0.75 .. 3.85 rad every 4 s, load 0 .. 0.4 of the largest every 9.7 s
-            angle = 1.55 + 2.3 * np.sin(_TWO_PI * t / 4.0 - math.pi / 2)
-            load = 0.2 * (1.0 - np.cos(_TWO_PI * t / 9.7))
+            angle, load = sweep(t)
+        elif self.scenario == "free":
+            angle, load = self._free.evaluate(t, length_m=self.rig.sensor_length_m)
         else:
             angle, load = self._cycles.evaluate(t)
         return per_angle * angle, self.load_max_n * load
+
+    def force_xy(self, t_s) -> np.ndarray:
+        """Tip force (Fx, Fy), N, base frame, at device times ``t_s`` (s), (N, 2)."""
+        t = np.atleast_1d(np.asarray(t_s, dtype=np.float64))
+        _, load = self.inputs(t)
+        phi = self._load_angle()
+        return np.stack([load * math.cos(phi), load * math.sin(phi)], axis=-1)
+
+    def _load_angle(self) -> float:
+        if self._force_hold is not None:
+            return math.copysign(math.pi / 2, self.hold_force_n)
+        return self.load_angle_rad
 
     def _hold_kappa(self, t: np.ndarray) -> np.ndarray:
         wobble = 0.02 * np.sin(_TWO_PI * 0.7 * t) + 0.01 * np.sin(_TWO_PI * 3.1 * t + 1.0)
         return self.hold_curvature_per_m + wobble
 
+    def _solve_force_hold(self, force_n: float) -> ElasticaSolution:
+        """One direct elastica solve: set pressure, ``force_n`` on the sensor's far end along +y."""
+        sol = self.solve(self.actuation_gain_nm_per_kpa * self.pressure_kpa, abs(force_n),
+                         load_angle_rad=math.copysign(math.pi / 2, force_n), load_lever_m=0.0)
+        if not bool(sol.converged[0]):
+            raise UserError(f"hold {force_n:g} N at {self.pressure_kpa:g} kPa: the finger's shape does not converge "
+                            "(force too large for this stiffness)")
+        return sol
+
     def _grid_weights(self, moment: np.ndarray, load: np.ndarray):
         tb = self._tables
-        i, fi = _bilinear(moment, tb.moment_grid)
-        j, fj = _bilinear(load, tb.load_grid)
+        i, fi = bilinear(moment, tb.moment_grid)
+        j, fj = bilinear(load, tb.load_grid)
         n_load = tb.load_grid.shape[0]
         r00 = i * n_load + j
         return (r00, r00 + 1, r00 + n_load, r00 + n_load + 1), (
@@ -750,20 +311,25 @@ class FingerModel:
             ``t_device_s`` (N,); ``curvature_per_m`` (N, S): exact mean
             curvature of each segment (heading change over the segment / its
             length); ``tip_xy_m`` (N, 2): end of the sensor in the base frame;
-            ``moment_nm`` (N,), ``load_n`` (N,).
+            ``moment_nm`` (N,), ``load_n`` (N,); ``force_xy_n`` (N, 2): tip
+            force in the base frame, N; ``pressure_kpa`` (N,).
         """
         t = np.atleast_1d(np.asarray(t_s, dtype=np.float64))
         seg = self.rig.segment_lengths_m
-        if self.hold is not None:
+        moment, load = self.inputs(t)
+        if self._force_hold is not None:
+            sol, taps = self._force_hold, self._tables.tap_nodes
+            curv = np.repeat(np.diff(sol.theta_rad[0, taps])[None, :] / seg[None, :], t.shape[0], axis=0)
+            tip = np.repeat(sol.xy_m[0, -1][None, :], t.shape[0], axis=0)
+        elif self.hold is not None:
             kappa = self._hold_kappa(t)
             curv = np.repeat(kappa[:, None], seg.shape[0], axis=1)
-            tip = _arc_xy(kappa, self.rig.sensor_length_m)
-            moment, load = self.inputs(t)
+            tip = arc_xy(kappa, self.rig.sensor_length_m)
         else:
-            moment, load = self.inputs(t)
             eq = self.equilibrium(moment_nm=moment, load_n=load)
             curv, tip = eq["curvature_per_m"], eq["tip_xy_m"]
-        return {"t_device_s": t.copy(), "curvature_per_m": curv, "tip_xy_m": tip, "moment_nm": moment, "load_n": load}
+        return {"t_device_s": t.copy(), "curvature_per_m": curv, "tip_xy_m": tip, "moment_nm": moment,
+                "load_n": load, "force_xy_n": self.force_xy(t), "pressure_kpa": self.pressure(t)}
 
     def equilibrium(self, *, moment_nm, load_n) -> dict:
         """Free finger's shape under given inputs, from the precomputed table.
@@ -787,7 +353,7 @@ class FingerModel:
         return {"curvature_per_m": np.diff(theta, axis=1) / self.rig.segment_lengths_m[None, :], "tip_xy_m": tip}
 
     def shape(self, t_s) -> tuple[np.ndarray, np.ndarray]:
-        """Fine-grid shape of the sensor at device times ``t_s``.
+        """Fine-grid shape of the sensor at device times ``t_s`` (the ground truth shape).
 
         Returns
         -------
@@ -798,45 +364,29 @@ class FingerModel:
         """
         t = np.atleast_1d(np.asarray(t_s, dtype=np.float64))
         s = self._tables.s_m
-        if self.hold is not None:
+        if self._force_hold is not None:
+            xy = np.repeat(self._force_hold.xy_m[:1], t.shape[0], axis=0)
+        elif self.hold is not None:
             kappa = self._hold_kappa(t)
-            xy = _arc_xy(kappa[:, None], s[None, :])
+            xy = arc_xy(kappa[:, None], s[None, :])
         else:
             rows, w = self._grid_weights(*self.inputs(t))
             xy = self._interp(self._tables.xy_nodes, rows, w).reshape(t.shape[0], s.shape[0], 2)
         return s.copy(), xy
 
-    def solve(self, moment_nm, load_n) -> ElasticaSolution:
+    def solve(self, moment_nm, load_n, *, load_angle_rad: float | None = None,
+              load_lever_m: float | None = None) -> ElasticaSolution:
         """Direct elastica solve (no table) for this finger, on the fine grid."""
         return solve_elastica(
             length_m=self.rig.sensor_length_m, bending_stiffness_nm2=self.bending_stiffness_nm2,
-            moment_nm=moment_nm, load_n=load_n, load_angle_rad=self.load_angle_rad,
-            load_lever_m=self.load_lever_m, s_m=self._tables.s_m,
+            moment_nm=moment_nm, load_n=load_n,
+            load_angle_rad=self.load_angle_rad if load_angle_rad is None else load_angle_rad,
+            load_lever_m=self.load_lever_m if load_lever_m is None else load_lever_m, s_m=self._tables.s_m,
         )
 
     # ------------------------------------------------------------------ electrics
 
-    def _setup_electrics(self) -> None:
-        rng = np.random.default_rng([self.seed, 0xE1EC])
-        s = self.rig.n_segments
-        lo, hi = self.rig.segment_ohm_range
-        # flat resistance in the geometric middle of the healthy range, kept
-        # far enough from its ends for the whole response (x0.55 .. x2.6)
-        nominal = math.sqrt(lo * hi)
-        if hi / lo > 2.6 / 0.55 * 1.15:
-            nominal = min(max(nominal, lo / 0.55 * 1.07), hi / 2.6 / 1.07)
-        self._r0 = nominal * (1.0 + rng.uniform(-0.05, 0.05, s))
-        # fractional rise per 1/m of positive bend, its square term, and the
-        # weaker, saturating response to the opposite bend
-        self._gain = 0.02 * (1.0 + rng.uniform(-0.1, 0.1, s))
-        self._beta_pos = 0.006 * (1.0 + rng.uniform(-0.2, 0.2, s))
-        self._rho_neg = 0.35 * (1.0 + rng.uniform(-0.15, 0.15, s))
-        self._beta_neg = 0.004 * (1.0 + rng.uniform(-0.2, 0.2, s))
-        tb = self._tables
-        coef = np.stack([self._gain, self._gain * self._beta_pos, self._gain * self._rho_neg,
-                         self._gain * self._rho_neg * self._beta_neg])  # (4, S)
-        self._dr_table = np.einsum("brs,bs->rs", tb.basis, coef)
-        self._dr_table.setflags(write=False)
+    def _setup_floating(self) -> None:
         rng_f = np.random.default_rng([self.seed, 0xF10A7])
         self._float_level = rng_f.uniform(0.3, 0.7)
         self._float_drift = rng_f.uniform(0.01, 0.04, 3)
@@ -844,98 +394,89 @@ class FingerModel:
         self._float_phase = rng_f.uniform(0.0, _TWO_PI, 3)
         self._tap_of_channel = {int(ch): k for k, ch in enumerate(self.rig.tap_channels.tolist())}
 
-    def _response(self, kappa: np.ndarray) -> np.ndarray:
-        """Fractional resistance change for a uniform curvature (N, S)."""
-        kp = np.maximum(kappa, 0.0)
-        kn = np.minimum(kappa, 0.0)
-        return self._gain * (kp + self._beta_pos * kp * kp + self._rho_neg * (kn + self._beta_neg * kn * kn))
+    def relative_change(self, t_s) -> np.ndarray:
+        """Static (ideal strip) relative resistance change u of each segment at device times ``t_s``, (N, S)."""
+        t = np.atleast_1d(np.asarray(t_s, dtype=np.float64))
+        if self._force_hold is not None:
+            taps, s = self._tables.tap_nodes, self._tables.s_m
+            local = self._static.response(self._force_hold.kappa_per_m[0][:, None])  # (P, S)
+            u = [simpson_mean(local[taps[k]:taps[k + 1] + 1, k], s[taps[k]:taps[k + 1] + 1])
+                 for k in range(self.n_segments)]
+            return np.repeat(np.asarray(u)[None, :], t.shape[0], axis=0)
+        if self.hold is not None:
+            return self._static.response(self._hold_kappa(t)[:, None])
+        rows, w = self._grid_weights(*self.inputs(t))
+        return self._interp(self._static.table, rows, w)
 
-    def segment_ohm(self, t_s, *, with_faults: bool = True) -> np.ndarray:
+    def segment_ohm(self, t_s, *, with_faults: bool = True, strip: StripStream | None = None) -> np.ndarray:
         """Resistance of each segment at device times ``t_s``, ohm (N, S).
 
+        Without ``strip``: the ideal strip's static law (pure). With ``strip``:
+        the real strip, which advances its state (frames in order, one thread).
         With ``with_faults``, shorted segments read 0 ohm.
         """
         t = np.atleast_1d(np.asarray(t_s, dtype=np.float64))
-        if self.hold is not None:
-            dr = self._response(self._hold_kappa(t)[:, None])
-        else:
-            rows, w = self._grid_weights(*self.inputs(t))
-            dr = self._interp(self._dr_table, rows, w)
-        r = self._r0 * np.maximum(1.0 + dr, 0.05)
+        u = self.relative_change(t)
+        r = self._static.ohm(u) if strip is None else strip.segment_ohm(t, u, self._static.r0_ohm)
         if with_faults and self.faults.short_taps is not None:
             a, b = self.faults.short_taps
             r[:, int(a) : int(b)] = 0.0
         return r
 
-    def tap_volts(self, t_s) -> np.ndarray:
+    def tap_volts(self, t_s, *, strip: StripStream | None = None) -> np.ndarray:
         """Divider tap voltages v_k (k = 0 .. S-1) in units of V_ex, (N, S).
 
-        r_ref into tap 0, segments in series, tap S grounded (CONTRACTS.md
-        section 2). Wiring faults at the ADC inputs are not applied here.
+        Wiring faults at the ADC inputs are not applied here.
         """
-        r = self.segment_ohm(t_s)
-        below = np.cumsum(r[:, ::-1], axis=1)[:, ::-1]  # resistance from tap k to ground
-        return below / (self.rig.r_ref_ohm + below[:, :1])
+        return divider_tap_volts(self.segment_ohm(t_s, strip=strip), self.rig.r_ref_ohm)
 
-    def _channel_volts(self, t: np.ndarray) -> np.ndarray:
+    def _channel_volts(self, t: np.ndarray, strip: StripStream | None = None) -> np.ndarray:
         """Noise-free input of each channel, units of V_ex (N, C)."""
-        n = t.shape[0]
-        v = np.empty((n, self.rig.n_channels))
-        v[:, self.rig.tap_channels] = self.tap_volts(t)
-        others = [c for c in range(self.rig.n_channels) if c not in self._tap_of_channel]
-        if others:
-            moment, _ = self.inputs(t)
-            full = self.bending_stiffness_nm2 * 3.85 / self.rig.sensor_length_m
-            for c in others:
-                if "pressure" in self.rig.channels[c].lower():
-                    # actuation pressure, taken as proportional to the moment;
-                    # 10 % of full scale at zero (vacuum below)
-                    v[:, c] = np.clip(0.1 + 0.8 * moment / full, 0.01, 0.99)
-                else:
-                    v[:, c] = 0.5
+        v = np.empty((t.shape[0], self.rig.n_channels))
+        v[:, self.rig.tap_channels] = self.tap_volts(t, strip=strip)
+        act = self.rig.actuation
+        for c in (c for c in range(self.rig.n_channels) if c not in self._tap_of_channel):
+            if act is not None and c == act.index:
+                # the rig's unit is taken as kPa: code = offset + p / per_code
+                v[:, c] = (act.offset_code + self.pressure(t) / act.per_code) / float(1 << self.adc_bits)
+            elif "pressure" in self.rig.channels[c].lower():
+                # actuation pressure, taken as proportional to the moment;
+                # 10 % of full scale at zero (vacuum below)
+                full = self.bending_stiffness_nm2 * 3.85 / self.rig.sensor_length_m
+                v[:, c] = np.clip(0.1 + 0.8 * self.inputs(t)[0] / full, 0.01, 0.99)
+            else:
+                v[:, c] = 0.5
         if self.faults.open_tap is not None:
             c = int(self.rig.tap_channels[int(self.faults.open_tap)])
             drift = sum(a * np.sin(_TWO_PI * f * t + p)
                         for a, f, p in zip(self._float_drift, self._float_hz, self._float_phase))
-            mains = 0.012 * np.sin(_TWO_PI * 50.0 * t)
-            v[:, c] = self._float_level + drift + mains
+            v[:, c] = self._float_level + drift + 0.012 * np.sin(_TWO_PI * 50.0 * t)  # mains
         return v
 
-    def codes(self, t_s, *, frame_index) -> np.ndarray:
+    def codes(self, t_s, *, frame_index, strip: StripStream | None = None) -> np.ndarray:
         """ADC codes at device times ``t_s``, uint16 (N, C).
 
         ``frame_index`` (N,) ints name the frames for the noise, which is a
         pure function of (seed, run, frame index, channel): the same frames give
-        the same codes however they are chunked.
+        the same codes however they are chunked. ``strip``: the real strip's
+        stream (stateful: frames in order); None for the ideal strip (pure).
         """
         t = np.atleast_1d(np.asarray(t_s, dtype=np.float64))
         fi = np.atleast_1d(np.asarray(frame_index, dtype=np.int64))
         if fi.shape != t.shape:
             raise ValueError("frame_index and t_s must have the same shape")
         full = float(1 << self.adc_bits)
-        c = self.rig.n_channels
-        x = self._channel_volts(t) * full
+        x = self._channel_volts(t, strip) * full
         if self.noise_lsb > 0:
-            x += self.noise_lsb * _normals(self._noise_key, fi, c)
+            x += self.noise_lsb * normals(self._noise_key, fi, self.rig.n_channels)
         f = self.faults
         if f.open_tap is not None:
             ch = int(self.rig.tap_channels[int(f.open_tap)])
-            x[:, ch] += 8.0 * _normals(self._fault_key, fi, 1)[:, 0]
+            x[:, ch] += 8.0 * normals(self._fault_key, fi, 1)[:, 0]
         if f.noisy_channel is not None and f.noisy_lsb > 0:
-            x[:, int(f.noisy_channel)] += f.noisy_lsb * _normals(self._fault_key ^ 0x5A5A, fi, 1)[:, 0]
+            x[:, int(f.noisy_channel)] += f.noisy_lsb * normals(self._fault_key ^ 0x5A5A, fi, 1)[:, 0]
         out = np.clip(np.rint(x), 0, full - 1).astype(np.uint16)
         if self._stuck_code is not None:
             out[:, int(f.stuck_channel)] = self._stuck_code
         return out
 
-
-def _arc_xy(kappa, s):
-    """Point at arc length s on a circle of curvature kappa from (0,0) heading +x."""
-    kappa = np.asarray(kappa, dtype=np.float64)
-    s = np.asarray(s, dtype=np.float64)
-    ks = kappa * s
-    small = np.abs(ks) < 1e-6
-    safe = np.where(small, 1.0, kappa)
-    x = np.where(small, s * (1 - ks * ks / 6.0), np.sin(ks) / safe)
-    y = np.where(small, s * ks / 2.0, (1.0 - np.cos(ks)) / safe)
-    return np.stack(np.broadcast_arrays(x, y), axis=-1)
