@@ -20,7 +20,7 @@ import pytest
 from acquire.core.align import align_clocks
 from acquire.core.markers import fit_marker_frames, read_marker_csv
 from acquire.rig import load_rig
-from acquire.virtual import VirtualFinger
+from acquire.virtual import StripSettings, VirtualFinger
 from acquire.virtual.camera import Camera, CameraSettings, write_marker_csv
 from acquire.virtual.model import FingerModel
 
@@ -44,14 +44,14 @@ def rig_with_middles(folder: Path) -> Path:
 
 
 def record(folder: Path, rig_path: Path, name: str, *, scenario: str, duration_s: float, seed: int = 7,
-           markers: bool, camera: CameraSettings | None = None) -> dict:
+           markers: bool, camera: CameraSettings | None = None, strip=None) -> dict:
     """Record the virtual finger through the serial path (``tapcurve record``), filming it if ``markers``."""
     rig = load_rig(rig_path)
     paths = {"rec": folder / f"{name}.h5", "truth": folder / f"{name}_truth.h5",
              "markers": folder / f"{name}.csv" if markers else None}
     dev = VirtualFinger(rig=rig, rate_hz=1000, seed=seed, scenario=scenario, time_scale=8.0,
                         truth_path=paths["truth"], markers_path=paths["markers"],
-                        camera=camera if markers else None)
+                        camera=camera if markers else None, strip=strip)
     dev.start()
     try:
         r = tapcurve("record", "--port", dev.path, "--rig", rig_path, "--out", paths["rec"],
@@ -68,9 +68,10 @@ def motion(tmp_path_factory):
     of the same finger (a different motion) with ground truth."""
     d = tmp_path_factory.mktemp("motion")
     rig_path = rig_with_middles(d)
+    ideal = StripSettings(mode="ideal")  # the strip without memory: what a static law can reach
     film = record(d, rig_path, "free", scenario="free", duration_s=40, markers=True,
-                  camera=CameraSettings(seed=7, offset_s=-5.0, rate_ppm=-230.0))
-    grasp = record(d, rig_path, "grasp", scenario="grasp", duration_s=16, markers=False)
+                  camera=CameraSettings(seed=7, offset_s=-5.0, rate_ppm=-230.0), strip=ideal)
+    grasp = record(d, rig_path, "grasp", scenario="grasp", duration_s=16, markers=False, strip=ideal)
     return {"dir": d, "rig": rig_path, "film": film, "grasp": grasp}
 
 
@@ -232,6 +233,7 @@ def test_tip_accuracy_from_motion_alone(calibrated, motion):
     assert err.mean() <= TIP_LIMIT_PERCENT
 
 
-#: what a static law from 40 s of the free motion reaches on the virtual strip (its creep and hysteresis,
-#: 4 % each, are not modelled from motion yet); the target is 1.0 %
-TIP_LIMIT_PERCENT = 15.0
+#: what a static law from one 40 s free-motion session reaches on the ideal strip (measured 2.5 %: the
+#: session's few pause levels leave gaps in the law where the grasp spends its time); the issue's target
+#: is 1.0 %, not reached yet (see the README's accuracy table). On the real strip it is about 13 %.
+TIP_LIMIT_PERCENT = 4.0
