@@ -23,7 +23,7 @@ from acquire.errors import UserError
 from acquire.session.signals import StopSignals
 from acquire.session.status import status_line
 
-__all__ = ["run_command", "display_available", "make_app", "exec_app"]
+__all__ = ["run_command", "display_available", "make_app", "exec_app", "live_session"]
 
 
 def display_available() -> tuple[bool, str]:
@@ -94,31 +94,42 @@ def _fmt_mb(n: int) -> str:
 # ----------------------------------------------------------------------------- live
 
 
-def _live(args, stop: StopSignals) -> int:
+def live_session(args):
+    """The (not yet started) :class:`~acquire.session.Session` that ``tapcurve live`` runs for ``args``.
+
+    Checks the rig, the calibration and the virtual finger's options (UserError
+    on bad input). With no ``--port`` and no ``--calibration``, the default
+    virtual finger on a rig wired like the built-in one comes with its built-in
+    calibration, so the finger is drawn at once. Main thread.
+    """
     from acquire.rig import load_rig
     from acquire.session import Session, load_calibration_for
     from acquire.sources.virtual import virtual_options_from_args
 
     rig = load_rig(args.rig)
     calibration = load_calibration_for(args.calibration, rig)
-    record = args.record
     vo = virtual_options_from_args(args, rig) if args.port is None else None
     if calibration is None and vo is not None:
         from acquire.virtual.builtin import BUILTIN_SEED, builtin_calibration
 
         if vo.seed == BUILTIN_SEED:  # the simulated finger comes calibrated: the finger bends at once
             calibration = builtin_calibration(rig)
+    return Session(
+        port=args.port, rig=rig, calibration=calibration, record_path=args.record, record_label=args.label,
+        publish=args.publish, publish_rate_hz=args.publish_rate_hz, allow_remote=args.publish_allow_remote,
+        virtual_options=vo,
+    )
+
+
+def _live(args, stop: StopSignals) -> int:
+    record = args.record
+    session = live_session(args)
     have_display, why = display_available()
     windowed = have_display and not args.headless
     if not windowed and not args.headless:
         _say(f"{why}: running headless (acquisition{' and recording' if record else ''}, a status line "
              "every second; Ctrl-C stops)")
     app = make_app() if windowed else None
-    session = Session(
-        port=args.port, rig=rig, calibration=calibration, record_path=record, record_label=args.label,
-        publish=args.publish, publish_rate_hz=args.publish_rate_hz, allow_remote=args.publish_allow_remote,
-        virtual_options=vo,
-    )
     session.start()
     _say(f"reading {session.source_name} at {session.rate_hz:g} Hz")
     if record is not None:
@@ -187,6 +198,11 @@ def _replay(args, stop: StopSignals) -> int:
 
     if not 0.1 <= args.speed <= 20.0:
         raise UserError(f"--speed {args.speed:g}: must be 0.1 .. 20")
+    markers = None
+    if getattr(args, "markers", None):  # checked (and aligned) before anything opens
+        from acquire.commands.calibrate_motion import marker_overlay
+
+        markers = marker_overlay(args.file, args.markers)
     have_display, why = display_available()
     windowed = have_display and not args.headless
     if not windowed and not args.headless:
@@ -203,7 +219,7 @@ def _replay(args, stop: StopSignals) -> int:
         if windowed:
             from .window import SensorWindow
 
-            window = SensorWindow(source=src)
+            window = SensorWindow(source=src, markers=markers)
             window.show()
             exec_app(app, stop=stop, duration_s=args.duration)
             window.close()
@@ -281,7 +297,7 @@ def _export(args, stop: StopSignals) -> int:
     from .export import export_recording_shape
 
     out = export_recording_shape(path=args.file, out=args.out, time_s=args.time, calibration=args.calibration,
-                                 force=args.force)
+                                 force=args.force, markers=getattr(args, "markers", None))
     _say(f"wrote {out}")
     del app
     return 0

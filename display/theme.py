@@ -38,6 +38,7 @@ COLOURS = {
     "label_band": (242, 181, 68, 70),
     "record": "#e2504c",
     "caution": "#e6b85c",
+    "markers": "#ff4fd8",  # filmed markers over the shape: apart from the amber sensor and the teal body
 }
 
 #: one colour per channel / segment, distinct on the dark background

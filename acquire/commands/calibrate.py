@@ -273,6 +273,7 @@ def calibrate_files(
     rig: Rig,
     table: dict | None = None,
     degree: int | tuple[int, int] | None = None,
+    static: bool = False,
 ) -> CalibrationRun:
     """Fit a calibration from labelled recordings.
 
@@ -347,7 +348,7 @@ def calibrate_files(
     return add_memory(CalibrationRun(
         calibration=cal, report=report, degree=degree, cv_rms_per_m=cv, infos=infos, notes=notes,
         recordings=recordings, holds=holds,
-    ), files=files, rig=rig)
+    ), files=files, rig=rig, static=static)
 
 
 
@@ -422,6 +423,7 @@ def calibrate_command(
     reference_path: str | None = None,
     force: bool = False,
     motions: Sequence[tuple[str, str]] = (),
+    static: bool = False,
     stdout: TextIO | None = None,
     stderr: TextIO | None = None,
 ) -> int:
@@ -450,7 +452,7 @@ def calibrate_command(
     from acquire.commands.calibrate_motion import calibrate_with_motion, print_calibration_report
 
     # holds only: calibrate_with_force (which adds the force model when there are force holds)
-    run = calibrate_with_motion(files, motions, rig=rig, table=table, stdout=stdout, stderr=stderr)
+    run = calibrate_with_motion(files, motions, rig=rig, table=table, stdout=stdout, stderr=stderr, static=static)
     for note in run.notes:
         _warn(note, stderr)
     for w in fit_warnings(run.report):
@@ -463,6 +465,9 @@ def calibrate_command(
     else:
         _print_calibration_report(run, out, stdout)
         print(f"wrote {figure}", file=stdout)
+    from acquire.commands.calibrate_memory import print_memory_report
+
+    print_memory_report(run, stdout)
     return 0
 
 

@@ -289,7 +289,7 @@ def format_force_report(run: ForceRun) -> list[str]:
 
 
 def calibrate_with_force(files: Sequence[str | os.PathLike], *, rig: Rig, table: dict | None = None,
-                         stdout: TextIO, stderr: TextIO):
+                         stdout: TextIO, stderr: TextIO, static: bool = False):
     """:func:`acquire.commands.calibrate.calibrate_files`, then the force model when there are force holds.
 
     Prints the force report to ``stdout`` and its warnings to ``stderr``;
@@ -304,7 +304,7 @@ def calibrate_with_force(files: Sequence[str | os.PathLike], *, rig: Rig, table:
     from acquire.commands.calibrate import calibrate_files
 
     n_force = check_force_labels(files, rig=rig, table=table)
-    run = calibrate_files(files, rig=rig, table=table)
+    run = calibrate_files(files, rig=rig, table=table, static=static)
     if not n_force:
         return run
     force = fit_force_files(files, rig=rig, calibration=run.calibration)

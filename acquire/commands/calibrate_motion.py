@@ -53,6 +53,7 @@ __all__ = [
     "MotionSession", "MotionCalibrationRun", "MarkerOverlay", "load_motion_session", "bin_motion",
     "choose_degree_motion", "calibrate_with_motion", "marker_overlay", "motion_report_lines",
     "print_calibration_report", "N_BINS", "MIN_BIN_FRAMES", "MAX_RESIDUAL_MM", "MAX_CURVATURE_SD_PER_M",
+    "POSE_WINDOW_S",
 ]
 
 #: bins per segment across the resistance range a session covers (under 2 1/m each on the demo finger)
@@ -68,6 +69,8 @@ MAX_CURVATURE_SD_PER_M = 25.0
 SETTLE_S = 0.2
 #: points kept per trace for the report picture
 TRACE_POINTS = 4000
+#: camera time over which the overlay's base pose is the median of the fitted poses, s
+POSE_WINDOW_S = 1.0
 
 
 @dataclass
@@ -402,7 +405,7 @@ def _collect_holds(files, *, rig: Rig, table):
 
 def calibrate_with_motion(files: Sequence, motions: Sequence[tuple], *, rig: Rig, table: dict | None = None,
                           stdout: TextIO | None = None, stderr: TextIO | None = None,
-                          degree: int | tuple[int, int] | None = None) -> CalibrationRun:
+                          degree: int | tuple[int, int] | None = None, static: bool = False) -> CalibrationRun:
     """Fit a calibration from labelled hold recordings and/or filmed motion sessions.
 
     Without ``motions`` this is the hold calibration
@@ -427,7 +430,7 @@ def calibrate_with_motion(files: Sequence, motions: Sequence[tuple], *, rig: Rig
     if not motions:
         from acquire.commands.calibrate_force import calibrate_with_force
 
-        return calibrate_with_force(files, rig=rig, table=table, stdout=stdout, stderr=stderr)
+        return calibrate_with_force(files, rig=rig, table=table, stdout=stdout, stderr=stderr, static=static)
     holds, infos, recordings, notes = _collect_holds(files, rig=rig, table=table)
     sessions = []
     for rec_path, markers_path in motions:
@@ -444,10 +447,22 @@ def calibrate_with_motion(files: Sequence, motions: Sequence[tuple], *, rig: Rig
     degree = (degree, degree) if np.ndim(degree) == 0 else (int(degree[0]), int(degree[1]))
     cal, report = fit_calibration(holds, rig=rig, degree=degree, recordings=recordings + motion_prov, motion=points)
     report.motion_sessions = [s.report_dict() for s in sessions]
-    notes.append("memory (creep, hysteresis) and force models are not fitted from motion sessions; "
-                 "the calibration is static")
+    notes.append("force models are not fitted from motion sessions")
     run = MotionCalibrationRun(calibration=cal, report=report, degree=degree, cv_rms_per_m=cv, infos=infos,
                                notes=notes, recordings=recordings + motion_prov, holds=holds, sessions=sessions)
+    from acquire.commands.calibrate_memory import MotionSeries, add_memory  # creep and hysteresis, where they help
+
+    with_memory = add_memory(run, files=files, rig=rig, static=static, motion=[
+        MotionSeries(s.t_device_s, s.resistance_ohm, s.curvature_per_m) for s in sessions])
+    if with_memory.calibration.memory is not None:  # memory kept: its law, with this run's motion report
+        sessions_report = report.motion_sessions
+        run.calibration, run.report = with_memory.calibration, with_memory.report
+        run.report.motion_sessions = sessions_report
+        if run.calibration.report is not None:
+            run.calibration.report.motion_sessions = sessions_report
+    run.notes = with_memory.notes
+    run.memory_report = getattr(with_memory, "memory_report", None)
+    run.memory_note = getattr(with_memory, "memory_note", "")
     return run
 
 
@@ -506,22 +521,36 @@ class MarkerOverlay:
     t_device_s : ndarray, shape (F,)
         Device time of each camera frame, s.
     xy_base_m : ndarray, shape (F, K, 2)
-        Observed markers moved into the base frame with each frame's fitted
-        pose, m; NaN where missing or the frame's fit failed.
+        Observed markers moved into the base frame, m, with the steady base
+        pose (the running median of the fitted poses over ``POSE_WINDOW_S``);
+        NaN where missed or no frame near has a fit.
     alignment : Alignment
+    interval_s : float
+        The camera's frame interval in device time (median), s; 0 for a single frame.
     """
 
     t_device_s: np.ndarray
     xy_base_m: np.ndarray
     alignment: Alignment
 
-    def at(self, t_device_s: float, *, max_gap_s: float = 0.1) -> np.ndarray | None:
-        """Markers (K, 2), m, of the camera frame nearest ``t_device_s``; None if none within ``max_gap_s``."""
-        if self.t_device_s.size == 0:
+    @property
+    def interval_s(self) -> float:
+        return float(np.median(np.diff(self.t_device_s))) if self.t_device_s.size > 1 else 0.0
+
+    def at(self, t_device_s: float, *, max_gap_s: float | None = None) -> np.ndarray | None:
+        """Markers (K, 2), m (new array), of the camera frame nearest ``t_device_s`` (s).
+
+        None when no camera frame lies within ``max_gap_s`` (default: one
+        camera interval) or ``t_device_s`` is not finite.
+        """
+        t = self.t_device_s
+        if t.size == 0 or not math.isfinite(t_device_s):
             return None
-        i = int(np.clip(np.searchsorted(self.t_device_s, t_device_s), 1, self.t_device_s.size - 1))
-        i = i - 1 if abs(self.t_device_s[i - 1] - t_device_s) <= abs(self.t_device_s[i] - t_device_s) else i
-        return self.xy_base_m[i].copy() if abs(self.t_device_s[i] - t_device_s) <= max_gap_s else None
+        gap = self.interval_s if max_gap_s is None else float(max_gap_s)
+        i = int(np.clip(np.searchsorted(t, t_device_s), 0, t.size - 1))
+        if i > 0 and abs(t[i - 1] - t_device_s) <= abs(t[i] - t_device_s):
+            i -= 1
+        return self.xy_base_m[i].copy() if abs(t[i] - t_device_s) <= gap else None
 
 
 def marker_overlay(rec_path, markers_path, *, rig: Rig | None = None) -> MarkerOverlay:
@@ -533,10 +562,20 @@ def marker_overlay(rec_path, markers_path, *, rig: Rig | None = None) -> MarkerO
     rig : Rig, optional
         Default: the recording's own rig (its ``[markers]``).
 
+    Returns
+    -------
+    MarkerOverlay
+        New arrays owned by the caller; the camera frames in device time
+        (the recording's ``/raw/t_device_s`` clock) and the observed markers
+        (wild points too: it shows what was filmed) in the base frame of the
+        steady base pose (see ``MarkerOverlay.xy_base_m``).
+
     Raises
     ------
     UserError
         As :func:`load_motion_session`.
+
+    Runs in the calling thread (reads both files; seconds for a long recording).
     """
     if rig is None:
         with open_recording(rec_path, allow_live=False) as rec:
@@ -544,12 +583,52 @@ def marker_overlay(rec_path, markers_path, *, rig: Rig | None = None) -> MarkerO
     track = _read_track(markers_path, rig)
     rec = _read_recording(rec_path, rig)
     fit = _fit_track(track, rig)
-    alignment = _align(f"{rec_path}/{markers_path}", rec, track, fit)
+    if fit.ok.sum() < 10:
+        raise UserError(f"{markers_path}: only {int(fit.ok.sum())} frames show enough markers to fit a shape; "
+                        f"check the rig's [markers] against the film")
+    alignment = _align(f"{rec_path} + {markers_path}", rec, track, fit)
     z = track.xy_m[..., 0] + 1j * track.xy_m[..., 1]
-    x0, y0, phi = fit.pose.T
+    x0, y0, phi = _steady_pose(track.t_s, fit.pose, fit.ok).T
     base = np.exp(-1j * phi)[:, None] * (z - (x0 + 1j * y0)[:, None])
-    xy = np.where(fit.ok[:, None, None], np.stack([base.real, base.imag], axis=-1), np.nan)
+    xy = np.stack([base.real, base.imag], axis=-1)  # NaN where missed or no pose near
     return MarkerOverlay(t_device_s=alignment.to_device_time(track.t_s), xy_base_m=xy, alignment=alignment)
+
+
+def _steady_pose(t_s: np.ndarray, pose: np.ndarray, ok: np.ndarray) -> np.ndarray:
+    """The base pose (F, 3) per camera frame: the running median of the fitted poses over POSE_WINDOW_S.
+
+    One frame's pose is poorly determined when markers near the base are
+    missed (the base angle trades against the first segment's curvature:
+    tenths of a radian); the mount moves slowly if at all, so the median of
+    its neighbours' poses is the steady one. NaN where no frame within half
+    the window has a fit.
+    """
+    good = ok & np.isfinite(pose).all(axis=1)
+    out = np.full(pose.shape, np.nan)
+    if not good.any():
+        return out
+    tg, pg = t_s[good], pose[good].copy()
+    pg[:, 2] = np.unwrap(pg[:, 2])
+    step = float(np.median(np.diff(tg))) if tg.size > 1 else POSE_WINDOW_S
+    half = max(1, round(0.5 * POSE_WINDOW_S / step))
+    padded = np.concatenate([np.full((half, 3), np.nan), pg, np.full((half, 3), np.nan)])
+    steady = np.empty_like(pg)
+    for a in range(0, tg.size, 8192):  # chunks bound the windows' memory on long films
+        b = min(a + 8192, tg.size)
+        windows = np.lib.stride_tricks.sliding_window_view(padded[a:b + 2 * half], 2 * half + 1, axis=0)
+        steady[a:b] = np.nanmedian(windows, axis=-1)
+    j = _nearest(tg, t_s)
+    near = np.abs(tg[j] - t_s) <= 0.5 * POSE_WINDOW_S
+    out[near] = steady[j[near]]
+    return out
+
+
+def _nearest(t: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Index of the nearest element of sorted ``t`` (non-empty) for each of ``x``."""
+    if t.size == 1:
+        return np.zeros(np.shape(x), dtype=np.intp)
+    i = np.clip(np.searchsorted(t, x), 1, t.size - 1)
+    return np.where(np.abs(t[i - 1] - x) <= np.abs(t[i] - x), i - 1, i)
 
 
 def warn_notes(notes: Sequence[str], stderr: TextIO) -> None:

@@ -118,6 +118,8 @@ def build_parser(*, simulator: bool = True) -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, metavar="CAL.json")
     p.add_argument("--reference", metavar="TABLE", help="table mapping label names to per-segment curvature")
     p.add_argument("--force", action="store_true", help="overwrite an existing calibration file")
+    p.add_argument("--static", action="store_true",
+                   help="skip the strip memory fit (creep, hysteresis): a static calibration only")
 
     p = sub.add_parser("tare", help="re-zero a calibration's flat resistances from a flat recording")
     p.add_argument("file", metavar="FILE", help="a recording of the sensor held flat")
@@ -142,6 +144,7 @@ def build_parser(*, simulator: bool = True) -> argparse.ArgumentParser:
     p.add_argument("--speed", type=number_in("--speed", 0.1, 20.0), default=1.0, help="playback speed, 0.1 .. 20 (default 1)")
     p.add_argument("--paused", action="store_true", help="open at the first frame without playing")
     p.add_argument("--headless", action="store_true", help="no window: play through, printing a status line")
+    p.add_argument("--markers", metavar="MARKERS.csv", help="draw the markers filmed during the recording over the shape")
     p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds")
 
     p = sub.add_parser("health", help="per-channel wiring health")
@@ -170,6 +173,7 @@ def build_parser(*, simulator: bool = True) -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, metavar="IMAGE", help=".png or .svg")
     p.add_argument("--force", action="store_true", help="replace an existing image (never a recording)")
     p.add_argument("--time", type=number_in("--time", -1e9, 1e9, unit="s"), default=None, metavar="S", help="device time in s (default: last frame)")
+    p.add_argument("--markers", metavar="MARKERS.csv", help="draw the markers filmed during the recording over the shape")
     p.add_argument("--calibration")
 
     p = sub.add_parser("virtual-device", help="run the virtual finger on a pseudo-terminal and print its path")
@@ -396,7 +400,7 @@ def _cmd_calibrate(args) -> int:
         raise UserError("calibrate: give recordings with labelled holds, --motion REC.h5 MARKERS.csv, or both")
     return calibrate_command(
         files=args.files, rig_path=args.rig, out_path=args.out, reference_path=args.reference, force=args.force,
-        motions=[tuple(m) for m in args.motion],
+        motions=[tuple(m) for m in args.motion], static=args.static,
     )
 
 

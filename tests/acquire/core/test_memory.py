@@ -374,3 +374,46 @@ def test_bad_dict_raises_one_line_naming_the_key(path, value, key):
         StripMemory.from_dict(_bad(path, value))
     msg = str(info.value)
     assert f"'{key}'" in msg and "\n" not in msg
+
+
+# ----------------------------------------------------------------------------- creep from holds
+
+
+def chained_holds(levels, *, rate_hz, hold_s, move_s=0.3):
+    """Made-up input (no source): smooth moves between held levels, and their HoldSteps."""
+    from acquire.core.memory_fit import HoldStep
+
+    parts, steps, t0, prev = [], [], 0.0, 0.0
+    for i, level in enumerate(levels):
+        s = np.arange(int(move_s * rate_hz)) / (move_s * rate_hz)
+        parts += [prev + (level - prev) * (3 * s * s - 2 * s ** 3), np.full(int(hold_s * rate_hz), level)]
+        steps.append(HoldStep(t0 + move_s / 2, t0 + move_s + 0.05, t0 + move_s + hold_s - 0.05, i > 0))
+        t0, prev = t0 + move_s + hold_s, level
+    return np.concatenate(parts), steps
+
+
+@pytest.mark.parametrize("c, tau", [(0.15, 1.0), (-0.1, 0.5)])
+def test_creep_from_steps_between_holds_matches_the_relaxation(c, tau):
+    # Data from the first-order relaxation itself (closed form checked above); the smooth move of
+    # 0.3 s acts as a step at its middle to within (T/tau)^2/24 (the lag's ramp response).
+    from acquire.core.memory_fit import fit_creep_steps
+
+    u, steps = chained_holds([0.0, 0.1, 0.2, 0.3, 0.4, 0.0, -0.05, -0.1, -0.2, 0.0], rate_hz=1000.0, hold_s=1.8)
+    x = Relaxation([[c]], [[tau]], rate_hz=1000.0).process(u[:, None])
+    x += np.random.default_rng(2).normal(scale=2e-4, size=x.shape)
+    fit = fit_creep_steps(np.arange(u.size) / 1000.0, x, steps, taus_s=[0.1, 0.2, 0.5, 1, 2, 5, 10, 20])
+    assert fit.gains[0] == pytest.approx(c, rel=0.1)
+    assert fit.taus_s[0] == pytest.approx(tau, rel=0.1)
+    assert fit.warnings == ()
+    # and an ideal strip shows none
+    ideal = fit_creep_steps(np.arange(u.size) / 1000.0, u[:, None] + 0 * x, steps, taus_s=[0.1, 1.0, 10.0])
+    assert ideal.gains[0] == 0.0 and np.isnan(ideal.taus_s[0])
+
+
+def test_creep_from_holds_needs_chained_steps():
+    from acquire.core.memory_fit import HoldStep, fit_creep_steps
+
+    u, steps = chained_holds([0.0, 0.3], rate_hz=100.0, hold_s=2.0)
+    lone = [HoldStep(s.t_step_s, s.t_start_s, s.t_end_s, False) for s in steps]
+    fit = fit_creep_steps(np.arange(u.size) / 100.0, u[:, None], lone, taus_s=[1.0])
+    assert "creep not identified" in fit.warnings[0]

@@ -1,0 +1,660 @@
+"""``tapcurve calibrate``, memory part: the strip's creep and hysteresis, and what they are worth.
+
+Printed strips remember: after a bend the resistance keeps moving for seconds
+(creep), and loading and unloading give different readings (hysteresis). The
+model is :mod:`acquire.core.memory` (play-operator hysteresis, then
+first-order relaxation, on ``x = R / r0 - 1``); the pipeline takes it out
+before the static law (:class:`acquire.core.stages.MemoryStage`).
+
+Identification
+--------------
+*From labelled holds* (always there): each hold starts with a step (the
+finger goes onto the next jig); the transient that follows gives the creep
+gain and time constant (:func:`acquire.core.memory_fit.fit_creep_steps`).
+Holds are all approached the same way and never unload along a loop, so they
+say nothing about hysteresis.
+
+*From motion sessions* (:class:`MotionSeries`: filtered resistance and a
+reference curvature per frame, e.g. from filmed markers): the reference is
+mapped back through the static law (:func:`invert_static_law`) to the static
+signal ``u``; :func:`acquire.core.memory_fit.fit_memory` identifies hysteresis
+and creep from (u, x). Creep the motion cannot identify comes from the holds.
+
+*Static law again*: the static law was fitted to hold means that still
+contained creep (and the loading branch of the hysteresis); it is fitted
+again to the holds with the memory taken out, so that law and memory agree.
+With motion this alternates twice (memory from the law, law from the memory).
+
+What it is worth
+----------------
+Per segment, the curvature error of the static calibration and of the
+calibration with memory on data the fit did not see: the last 25 % of the
+motion, or each hold predicted by a creep fit without it (leave-one-hold-out).
+Memory is kept only in segments where it cuts that error by at least 5 %
+(the margin :func:`acquire.commands.calibrate.choose_degree` asks of a higher
+degree), so an ideal strip keeps its static calibration. ``--static`` skips
+all of this.
+
+Threads: the calling (main) thread. Returned objects are new.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import asdict, dataclass
+from typing import Sequence, TextIO
+
+import numpy as np
+
+from acquire.commands.common import MIN_STEADY_FRAMES, _adc_bits, filtered_intervals, recording_rate_hz
+from acquire.core.calibration import Calibration, CalibrationError, FitReport, Hold, fit_calibration, steady_part
+from acquire.core.memory import Relaxation, SegmentMemory, StripMemory
+from acquire.core.memory_fit import CreepStepsFit, HoldStep, fit_creep_steps, fit_memory
+from acquire.errors import UserError
+from acquire.rig import Rig
+from acquire.store.recording import open_recording
+
+__all__ = ["MotionSeries", "HoldSpan", "HoldsSeries", "SegmentMemoryReport", "MemoryReport", "MemoryResult",
+           "MemoryCalibrationRun", "DEFAULT_TAUS_S", "invert_static_law", "hold_steps", "holds_series_from_files",
+           "fit_strip_memory", "add_memory", "memory_report_lines", "print_memory_report"]
+
+#: creep time constants searched, s (strips are reported from tenths of a second to tens; from memory)
+DEFAULT_TAUS_S = (0.1, 0.2, 0.5, 1.0, 2.0, 5.0, 10.0, 20.0)
+#: play thresholds as fractions of the static signal's span: small loops to a fifth of the range
+_PI_FRACTIONS = (0.025, 0.05, 0.1, 0.2)
+#: memory is kept where it cuts the held-out error to below this fraction of the static one
+#: (the margin choose_degree asks of a higher degree; common practice, no source)
+_KEEP_BELOW = 0.95
+#: the first seconds of each motion session are not scored: the strip's earlier history is unknown
+#: (a few creep time constants; common practice, no source)
+_BURN_IN_S = 2.0
+_SPEED_SMOOTH_S = 0.02  # moving average of the reading's speed when finding the move into a hold
+_MOVE_END_FRACTION = 0.1  # a move has ended when the speed falls below this fraction of its peak
+_MAX_GAP_S = 10.0  # holds further apart than this are not one chain of steps
+_MAX_ROUNDS = 12  # law from memory, memory from law: at most this many rounds with motion
+_BAND_SETTLED = 0.005  # ... stopping when no segment's hysteresis band moves by more than this fraction
+_FIT_RATE_HZ = 100.0  # motion is fitted at about this frame rate
+
+
+@dataclass(frozen=True)
+class MotionSeries:
+    """One motion session: filtered resistance and the reference curvature per frame.
+
+    Attributes
+    ----------
+    t_s : ndarray, shape (N,)
+        Frame times, s, evenly spaced.
+    resistance_ohm : ndarray, shape (N, S)
+        Filtered segment resistance, ohm (the pipeline's ``filtered_ohm``).
+    reference_per_m : ndarray, shape (N, S)
+        Reference mean curvature per segment, 1/m; NaN where unknown.
+    """
+
+    t_s: np.ndarray
+    resistance_ohm: np.ndarray
+    reference_per_m: np.ndarray
+
+
+@dataclass(frozen=True)
+class HoldSpan:
+    """One used hold: its label, interval (device time, s) and reference curvature (S,), 1/m."""
+
+    label: str
+    t_start_s: float
+    t_end_s: float
+    reference_per_m: np.ndarray
+
+
+@dataclass(frozen=True)
+class HoldsSeries:
+    """A recording of labelled holds: filtered resistance of every frame and where the holds are.
+
+    ``barriers``: (t_start_s, t_end_s) of labelled intervals that are not holds
+    (motion): a hold after one does not continue the chain of steps.
+    """
+
+    t_s: np.ndarray
+    resistance_ohm: np.ndarray
+    holds: tuple
+    rate_hz: float
+    barriers: tuple = ()
+
+
+@dataclass(frozen=True)
+class SegmentMemoryReport:
+    """What the memory of one segment is and is worth (errors in 1/m and % of the calibrated range)."""
+
+    segment: int
+    kept: bool
+    creep_from: str  # "holds", "motion" or "-"
+    creep_gain: float
+    creep_tau_s: float | None
+    creep_pct: float  # creep after a full-range step, % of the range
+    hysteresis_band_pct: float | None  # widest band of the major loop, % of range; None: not identified
+    heldout: str  # how the held-out error was measured
+    heldout_rms_static_per_m: float | None
+    heldout_rms_memory_per_m: float | None
+    heldout_rms_static_pct: float | None
+    heldout_rms_memory_pct: float | None
+    warnings: tuple
+
+
+@dataclass(frozen=True)
+class MemoryReport:
+    """The memory fit of a calibration run (immutable; any thread)."""
+
+    segments: tuple
+    warnings: tuple = ()
+
+    @property
+    def all_warnings(self) -> list[str]:
+        """Run-wide warnings, then each segment's, one line each."""
+        return list(self.warnings) + [w for s in self.segments for w in s.warnings]
+
+    def to_dict(self) -> dict:
+        """JSON-able dict (plain floats, None for unknown)."""
+        return {"segments": [asdict(s) for s in self.segments], "warnings": list(self.warnings)}
+
+    def text(self) -> str:
+        """A table for people, one line per segment, then the warnings."""
+        lines = ["  segment     memory  creep % (tau s, from)    band %   held-out rms 1/m static -> memory  (% of range)"]
+        for s in self.segments:
+            tau = f"{s.creep_tau_s:.3g} s" if s.creep_tau_s else "-"
+            band = "-" if s.hysteresis_band_pct is None else f"{s.hysteresis_band_pct:.2f}"
+            if s.heldout_rms_static_per_m is None:
+                held = "not measured"
+            else:
+                held = (f"{s.heldout_rms_static_per_m:7.3f} -> {s.heldout_rms_memory_per_m:7.3f}  "
+                        f"({s.heldout_rms_static_pct:.2f} -> {s.heldout_rms_memory_pct:.2f})")
+            lines.append(f"  segment {s.segment:2d}  {'kept' if s.kept else 'no':>6s}  {s.creep_pct:6.2f} ({tau}, {s.creep_from})"
+                         .ljust(42) + f"{band:>7s}   {held}")
+        if self.segments:
+            lines.append(f"  held-out: {self.segments[0].heldout}")
+        lines += [f"  warning: {w}" for w in self.all_warnings]
+        return "\n".join(lines)
+
+
+@dataclass(frozen=True)
+class MemoryResult:
+    """:func:`fit_strip_memory`'s answer: the calibration (memory in it where kept), its static report."""
+
+    calibration: Calibration
+    fit_report: FitReport
+    report: MemoryReport
+
+
+# ----------------------------------------------------------------------------- pieces
+
+
+def invert_static_law(calibration: Calibration, curvature_per_m, *, n_grid: int = 4001) -> np.ndarray:
+    """Relative resistance change ``x`` (N, S) the static law maps to ``curvature_per_m`` (N, S).
+
+    The law is monotone increasing (checked when fitted) and continues as a
+    straight line beyond the fitted range, so the inverse is a table
+    interpolation inside a wide grid and the edge slopes beyond it. NaN stays NaN.
+    """
+    k = np.asarray(curvature_per_m, dtype=float)
+    out = np.full(k.shape, np.nan)
+    for s in range(calibration.n_segments):
+        lo, hi = float(calibration.x_min[s]), float(calibration.x_max[s])
+        pad = max(hi - lo, 1e-6)
+        # the law's kinks (flat, the fitted edges) are grid points: exact there, not interpolated across
+        xg = np.union1d(np.linspace(max(lo - pad, -0.99), hi + pad, n_grid), [lo, 0.0, hi])
+        col = np.zeros((xg.size, calibration.n_segments))
+        col[:, s] = xg
+        kg = calibration.curvature_per_m(calibration.r0_ohm * (1.0 + col))[:, s]
+        inside = np.interp(k[:, s], kg, xg)
+        slope_lo = (xg[1] - xg[0]) / (kg[1] - kg[0])
+        slope_hi = (xg[-1] - xg[-2]) / (kg[-1] - kg[-2])
+        below, above = k[:, s] < kg[0], k[:, s] > kg[-1]
+        inside[below] = xg[0] + (k[below, s] - kg[0]) * slope_lo
+        inside[above] = xg[-1] + (k[above, s] - kg[-1]) * slope_hi
+        out[:, s] = np.where(np.isfinite(k[:, s]), inside, np.nan)
+    return out
+
+
+def _speed(t_s: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Smoothed speed of all segments together, each in units of its own range, per frame."""
+    span = np.nanmax(x, axis=0) - np.nanmin(x, axis=0)
+    span = np.where(np.isfinite(span) & (span > 0), span, 1.0)
+    v = np.nansum(np.abs(np.diff(x, axis=0, prepend=x[:1])) / span, axis=1)
+    dt = float(np.median(np.diff(t_s))) if t_s.size > 1 else 1.0
+    w = max(1, int(round(_SPEED_SMOOTH_S / dt)))
+    return np.convolve(v, np.ones(w) / w, mode="same")
+
+
+def hold_steps(t_s, x, holds: Sequence[HoldSpan], *, barriers=()) -> list[HoldStep]:
+    """The step into each hold (the fastest moment of the move before it) and the frames after the move.
+
+    Parameters
+    ----------
+    t_s : array_like, shape (N,)
+    x : array_like, shape (N, S)
+        Relative resistance change of the whole recording.
+    holds : sequence of HoldSpan
+        In time order.
+    barriers : sequence of (t_start_s, t_end_s)
+        Other labelled intervals (motion): a hold after one starts a new chain.
+    """
+    t, x = np.asarray(t_s, float), np.asarray(x, float)
+    speed = _speed(t, x)
+    out, prev_end = [], float(t[0]) if t.size else 0.0
+    for h, span in enumerate(holds):
+        gap = np.flatnonzero((t > prev_end) & (t < span.t_start_s))
+        t_step = t_first = span.t_start_s
+        if gap.size >= 3:
+            k = gap[int(np.argmax(speed[gap]))]
+            t_step = float(t[k])
+            after = gap[(gap > k) & (speed[gap] < _MOVE_END_FRACTION * speed[k])]
+            t_first = max(span.t_start_s, float(t[after[0]]) if after.size else span.t_start_s)
+        crossed = any(a < span.t_start_s and b > prev_end for a, b in barriers)
+        chained = h > 0 and not crossed and span.t_start_s - prev_end <= _MAX_GAP_S
+        out.append(HoldStep(t_step, t_first, span.t_end_s, chained))
+        prev_end = span.t_end_s
+    return out
+
+
+def _steps_all(law: Calibration, holds: Sequence[HoldsSeries]):
+    """Every holds recording on one time axis (chains never cross recordings): t, x, steps, spans."""
+    ts, xs, steps, spans, offset = [], [], [], [], 0.0
+    for series in holds:
+        t = np.asarray(series.t_s, float)
+        x = np.asarray(series.resistance_ohm, float) / law.r0_ohm - 1.0
+        for st in hold_steps(t, x, series.holds, barriers=series.barriers):
+            steps.append(dataclasses.replace(st, t_step_s=st.t_step_s + offset, t_start_s=st.t_start_s + offset,
+                                             t_end_s=st.t_end_s + offset))
+        spans.extend(series.holds)
+        ts.append(t + offset)
+        xs.append(x)
+        offset = float(ts[-1][-1]) + 1.0 if t.size else offset
+    return np.concatenate(ts), np.concatenate(xs), steps, spans
+
+
+def _creep_memory(fit, n_segments: int) -> StripMemory:
+    segs = [SegmentMemory(creep_gains=[c], creep_taus_s=[tau]) if c else SegmentMemory()
+            for c, tau in zip(fit.gains, fit.taus_s)]
+    return StripMemory(segs[:n_segments])
+
+
+def _compensated_holds(law0: Calibration, holds: Sequence[HoldsSeries], memory: StripMemory) -> list[Hold]:
+    """The holds again, steady parts of the memory-compensated resistance (static resistance)."""
+    out = []
+    for series in holds:
+        t = np.asarray(series.t_s, float)
+        x = np.asarray(series.resistance_ohm, float) / law0.r0_ohm - 1.0
+        r = law0.r0_ohm * (1.0 + memory.compensate(x, rate_hz=series.rate_hz))
+        for span in series.holds:
+            a, b = np.searchsorted(t, span.t_start_s, "left"), np.searchsorted(t, span.t_end_s, "right")
+            mask = steady_part(t[a:b], r[a:b], span.t_start_s, span.t_end_s)
+            if mask.sum() >= MIN_STEADY_FRAMES:
+                out.append(Hold(reference_per_m=span.reference_per_m, resistance_ohm=r[a:b][mask], label=span.label))
+    return out
+
+
+def _refit_static(law0, holds, memory, *, rig, degree):
+    """(Calibration, FitReport) of the static law fitted to the compensated holds (no holds: as it was)."""
+    if not holds:
+        return law0, law0.report or FitReport(segments=[], warnings=[])
+    return fit_calibration(_compensated_holds(law0, holds, memory), rig=rig, degree=degree,
+                           recordings=law0.recordings)
+
+
+def _memory_curvature(law: Calibration, memory: StripMemory, resistance_ohm, rate_hz: float) -> np.ndarray:
+    """Curvature (N, S) of a stream through memory compensation (from rest) and the static law."""
+    x = np.asarray(resistance_ohm, float) / law.r0_ohm - 1.0
+    return law.curvature_per_m(law.r0_ohm * (1.0 + memory.compensate(x, rate_hz=rate_hz)))
+
+
+def _rms(err: np.ndarray) -> np.ndarray:
+    """RMS per column over finite rows; NaN where none."""
+    ok = np.isfinite(err)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.sqrt((np.where(ok, err, 0.0) ** 2).sum(axis=0) / ok.sum(axis=0))
+
+
+# ----------------------------------------------------------------------------- holds
+
+
+def _holds_curvature(law, memory, holds) -> np.ndarray:
+    """Curvature of every frame of every holds recording (concatenated), memory from each one's start."""
+    return np.concatenate([_memory_curvature(law, memory, h.resistance_ohm, h.rate_hz) for h in holds])
+
+
+def _holds_heldout(law0, holds, *, rig, degree, taus_s):
+    """Leave-one-hold-out curvature errors (static, memory) per segment, 1/m RMS, and the number of folds.
+
+    Each chained hold in turn: creep fitted without it, static law refitted to
+    the holds compensated with that creep, then its frames (after the move)
+    predicted; the static arm is the static calibration on the same frames.
+    """
+    t, x, steps, spans = _steps_all(law0, holds)
+    r = law0.r0_ohm * (1.0 + x)
+    k_static = law0.curvature_per_m(r)
+    e_static, e_memory = [], []
+    for h, st in enumerate(steps):
+        rows = np.flatnonzero((t >= st.t_start_s) & (t <= st.t_end_s))
+        if not st.chained or not rows.size:
+            continue
+        memory = _creep_memory(fit_creep_steps(t, x, steps, taus_s=taus_s, exclude={h}), law0.n_segments)
+        try:
+            law, _ = _refit_static(law0, holds, memory, rig=rig, degree=degree)
+        except CalibrationError:
+            continue
+        ref = np.asarray(spans[h].reference_per_m, float)[None, :]
+        e_static.append(k_static[rows] - ref)
+        e_memory.append(_holds_curvature(law, memory, holds)[rows] - ref)
+    if not e_static:
+        return None, None, 0
+    return _rms(np.concatenate(e_static)), _rms(np.concatenate(e_memory)), len(e_static)
+
+
+# ----------------------------------------------------------------------------- motion
+
+
+def _fill_gaps(t: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """u with NaN filled by interpolation in time per column (0 where a column has nothing)."""
+    out = u.copy()
+    for s in range(u.shape[1]):
+        ok = np.isfinite(u[:, s])
+        out[~ok, s] = np.interp(t[~ok], t[ok], u[ok, s]) if ok.any() else 0.0
+    return out
+
+
+def _motion_arrays(law: Calibration, motion: Sequence[MotionSeries]):
+    """Static signal u, x, reference, resistance of all sessions end to end, and their frame rate, Hz."""
+    parts, rates = [], []
+    for i, m in enumerate(motion):
+        t = np.asarray(m.t_s, float)
+        r, k = np.asarray(m.resistance_ohm, float), np.asarray(m.reference_per_m, float)
+        if t.ndim != 1 or r.shape != (t.size, law.n_segments) or k.shape != r.shape or t.size < 2:
+            raise UserError(f"motion session {i}: need t_s (N,) and resistance and reference of shape "
+                            f"(N, {law.n_segments}), got {t.shape}, {r.shape}, {k.shape}")
+        rates.append(1.0 / float(np.median(np.diff(t))))
+        x = r / law.r0_ohm - 1.0
+        x[~np.isfinite(k) | (t < t[0] + _BURN_IN_S)[:, None]] = np.nan  # unknown reference, unknown history
+        parts.append((_fill_gaps(t, invert_static_law(law, k)), x, k, r))
+    if max(rates) > 1.01 * min(rates):
+        raise UserError(f"motion sessions: frame rates differ ({min(rates):.6g} to {max(rates):.6g} Hz)")
+    u, x, k, r = (np.concatenate([p[j] for p in parts]) for j in range(4))
+    return u, x, k, r, float(np.median(rates))
+
+
+def _fit_motion(u, x, rate_hz, creep, taus_s=DEFAULT_TAUS_S):
+    """(StripMemory, per-segment (creep source, band %, warnings), n_train) from a motion stream.
+
+    Hysteresis and creep together; where the motion cannot identify the creep,
+    hysteresis alone on the reading with the holds' creep taken out. Fitted on
+    every k-th frame (about _FIT_RATE_HZ): play operators do not depend on the
+    rate and the shortest creep searched spans 10 such frames.
+    """
+    k = max(1, int(rate_hz // _FIT_RATE_HZ))
+    u, x, rate = u[::k], x[::k], rate_hz / k
+    span = np.ptp(u, axis=0)
+    scale = float(np.median(span[span > 0])) if np.any(span > 0) else 1.0
+    grid = [0.0] + [f * scale for f in _PI_FRACTIONS]
+    mem_a, rep_a = fit_memory(u, x, rate_hz=rate, thresholds=grid, taus_s=taus_s, n_creep=1)
+    need = [s for s, r in enumerate(rep_a.segments)
+            if any("creep" in w for w in r.warnings) or not r.creep_gains or abs(r.creep_gains[0]) < 0.01]
+    segs, info = list(mem_a.segments), [("motion", r.hysteresis_band_pct, r.warnings) for r in rep_a.segments]
+    if need:
+        gains = np.asarray(creep.gains, float)[need][:, None]
+        taus = np.where(gains != 0, np.nan_to_num(np.asarray(creep.taus_s, float)[need][:, None], nan=1.0), 1.0)
+        y = Relaxation(gains, taus, rate_hz=rate, inverse=True).process(x[:, need])
+        mem_b, rep_b = fit_memory(u[:, need], y, rate_hz=rate, thresholds=grid, taus_s=taus_s, n_creep=0)
+        for j, s in enumerate(need):
+            b, rb, c = mem_b.segments[j], rep_b.segments[j], [gains[j, 0]] if gains[j, 0] else []
+            segs[s] = SegmentMemory(b.pi_thresholds, b.pi_weights, c, [taus[j, 0]] if c else [])
+            dropped = () if c else tuple(w for w in rep_a.segments[s].warnings if "creep" in w)
+            info[s] = ("holds" if c else "-", rb.hysteresis_band_pct,
+                       tuple(w.replace(f"segment {j}:", f"segment {s}:") for w in rb.warnings) + dropped)
+    return StripMemory([_unit_scale(seg) for seg in segs]), info, rep_a.n_train * k
+
+
+def _unit_scale(seg: SegmentMemory) -> SegmentMemory:
+    """The same memory for the static signal rescaled so that the play weights sum to 1.
+
+    ``u`` is only defined up to a factor (``H[u] = H'[a u]`` with thresholds
+    times a, weights over a); without a convention the alternating fit drifts
+    along it. With weights summing to 1 a large monotone move passes with unit
+    gain; the static law refitted next absorbs the factor.
+    """
+    a = float(seg.pi_weights.sum())
+    if not a > 0:
+        return seg
+    return SegmentMemory(seg.pi_thresholds * a, seg.pi_weights / a, seg.creep_gains, seg.creep_taus_s)
+
+
+def _with_motion(law0, holds, motion, creep, *, rig, degree):
+    """Rounds of memory from the law and law from the memory; held-out errors on the motion's last part.
+
+    The first round searches the creep time constant; later rounds keep it
+    (it hardly moves) and refit weights and gains only, which is cheap, until
+    the hysteresis band settles (alternating fits converge slowly: each round
+    roughly halves the distance; measured on the tests' made-up strip).
+    """
+    law = law0
+    memory = _creep_memory(creep, law0.n_segments)
+    if any(creep.gains):
+        law, _ = _refit_static(law0, holds, memory, rig=rig, degree=degree)
+    taus, bands = DEFAULT_TAUS_S, None
+    for _ in range(_MAX_ROUNDS):
+        u, x, k, r, rate = _motion_arrays(law, motion)
+        memory, info, n_train = _fit_motion(u, x, rate, creep, taus)
+        law, report = _refit_static(law0, holds, memory, rig=rig, degree=degree)
+        found = [t for seg in memory.segments for t in seg.creep_taus_s]
+        taus = [float(np.median(found))] if found else DEFAULT_TAUS_S
+        new = np.array([i[1] for i in info])
+        if bands is not None and np.all(np.abs(new - bands) <= _BAND_SETTLED * np.maximum(np.abs(new), 1e-9)):
+            break
+        bands = new
+    held = (np.arange(k.shape[0]) >= n_train)[:, None] & np.isfinite(x) & np.isfinite(k)
+    e_static = np.where(held, law0.curvature_per_m(r) - k, np.nan)
+    e_memory = np.where(held, _memory_curvature(law, memory, r, rate) - k, np.nan)
+    return law, report, memory, info, (_rms(e_static), _rms(e_memory)), rate
+
+
+# ----------------------------------------------------------------------------- the whole fit
+
+
+def _segment_reports(law0, memory, info, heldout, how, extra_warnings):
+    """Per-segment reports; memory kept where it wins held-out by the margin."""
+    e_static, e_memory = heldout
+    span = np.maximum(law0.curvature_max_per_m - law0.curvature_min_per_m, 1e-12)
+    out = []
+    for s, seg in enumerate(memory.segments):
+        source, band, warns = info[s]
+        warns = [f"segment {s}: {w}" if not w.startswith("segment") else w for w in warns]
+        warns += extra_warnings.get(s, [])
+        trivial = seg.creep_gains.size == 0 and seg.pi_weights.size == 1 and seg.pi_weights[0] == 1.0
+        known = e_static is not None and math.isfinite(e_static[s]) and math.isfinite(e_memory[s])
+        kept = bool(not trivial and known and e_memory[s] < _KEEP_BELOW * e_static[s])
+        if not trivial and not kept:
+            warns.append(f"segment {s}: memory does not improve the held-out error: static law kept"
+                         if known else f"segment {s}: no held-out data to check the memory: static law kept")
+        c = float(seg.creep_gains.sum()) if seg.creep_gains.size else 0.0
+        out.append(SegmentMemoryReport(
+            segment=s, kept=kept, creep_from=source if c else "-", creep_gain=c,
+            creep_tau_s=float(seg.creep_taus_s[0]) if c else None, creep_pct=100.0 * abs(c),
+            hysteresis_band_pct=band, heldout=how,
+            heldout_rms_static_per_m=float(e_static[s]) if known else None,
+            heldout_rms_memory_per_m=float(e_memory[s]) if known else None,
+            heldout_rms_static_pct=float(100 * e_static[s] / span[s]) if known else None,
+            heldout_rms_memory_pct=float(100 * e_memory[s] / span[s]) if known else None,
+            warnings=tuple(warns)))
+    return out
+
+
+def _assemble(law0, report0, law, report, memory, reports, run_warnings) -> MemoryResult:
+    """The calibration: per segment, the refitted law with memory where kept, else the static one."""
+    kept = [r.kept for r in reports]
+
+    def pick(name):
+        a, b = getattr(law0, name), getattr(law, name)
+        return [b[k] if kept[k] else a[k] for k in range(law0.n_segments)]
+
+    mreport = MemoryReport(tuple(reports), tuple(run_warnings))
+    fit_report = FitReport(segments=[(report if kept[k] else report0).segments[k] for k in range(law0.n_segments)],
+                           warnings=list(report0.warnings))
+    if not any(kept):
+        return MemoryResult(dataclasses.replace(law0, report=fit_report), fit_report, mreport)
+    segs = [memory.segments[k] if kept[k] else SegmentMemory() for k in range(law0.n_segments)]
+    # the report rides in the memory section: it survives a tare (StripMemory ignores the extra key)
+    mem = {**StripMemory(segs).to_dict(), "fit_report": mreport.to_dict()}
+    cal = dataclasses.replace(
+        law0, r0_ohm=np.array(pick("r0_ohm")), positive=pick("positive"), negative=pick("negative"),
+        x_min=np.array(pick("x_min")), x_max=np.array(pick("x_max")),
+        curvature_min_per_m=np.array(pick("curvature_min_per_m")),
+        curvature_max_per_m=np.array(pick("curvature_max_per_m")), report=fit_report, memory=mem)
+    return MemoryResult(cal, fit_report, mreport)
+
+
+def fit_strip_memory(static_calibration: Calibration, holds: Sequence[HoldsSeries],
+                     motion: Sequence[MotionSeries] = (), *, rig: Rig, degree=2,
+                     taus_s=DEFAULT_TAUS_S) -> MemoryResult:
+    """Creep (holds and/or motion) and hysteresis (motion) of every segment, kept where they win held-out.
+
+    Parameters
+    ----------
+    static_calibration : Calibration
+        The static calibration fitted from ``holds`` (its ``report`` set).
+    holds : sequence of HoldsSeries
+        The recordings of labelled holds it was fitted from.
+    motion : sequence of MotionSeries
+        Motion sessions with a reference curvature (may be empty).
+    rig : Rig
+    degree : int or (int, int)
+        The static law's polynomial degree (as chosen for the static fit).
+    taus_s : sequence of float
+        Creep time constants searched, s.
+
+    Returns
+    -------
+    MemoryResult
+        The calibration (memory in it where kept; the static law refitted to
+        the compensated holds in those segments), its static fit report and
+        the memory report.
+
+    Raises
+    ------
+    UserError
+        Motion sessions of the wrong shape or different frame rates.
+    """
+    law0 = static_calibration
+    report0 = law0.report or FitReport(segments=[], warnings=[])
+    if holds:
+        t, x, steps, _ = _steps_all(law0, holds)
+        creep = fit_creep_steps(t, x, steps, taus_s=taus_s)
+    else:
+        n = law0.n_segments
+        creep = CreepStepsFit(np.zeros(n), np.full(n, np.nan), np.zeros(n, int), np.zeros((0, n)),
+                              ("no holds: creep from the motion alone",))
+    run_warnings = list(creep.warnings)
+    extra = {}
+    if motion:
+        law, report, memory, info, heldout, rate = _with_motion(law0, holds, motion, creep, rig=rig, degree=degree)
+        how = "last 25 % of the motion sessions, curvature against the reference"
+    else:
+        run_warnings.append("no unloading seen: hysteresis not identified (holds only; a motion session with a "
+                            "reference curvature identifies it)")
+        memory = _creep_memory(creep, law0.n_segments)
+        info = [("holds", None, ())] * law0.n_segments
+        how = "leave-one-hold-out, curvature against the hold's reference"
+        law, report, heldout = law0, report0, (None, None)
+        if any(creep.gains):
+            law, report = _refit_static(law0, holds, memory, rig=rig, degree=degree)
+            e_static, e_memory, _ = _holds_heldout(law0, holds, rig=rig, degree=degree, taus_s=taus_s)
+            heldout = (e_static, e_memory)
+        rate = float(np.median([h.rate_hz for h in holds])) if holds else 1000.0
+    for s, seg in enumerate(memory.segments):
+        try:
+            StripMemory([seg]).compensator(rate_hz=rate)
+        except ValueError as exc:
+            extra.setdefault(s, []).append(f"segment {s}: {exc}")
+            memory = StripMemory([*memory.segments[:s], SegmentMemory(), *memory.segments[s + 1:]])
+    reports = _segment_reports(law0, memory, info, heldout, how, extra)
+    return _assemble(law0, report0, law, report, memory, reports, run_warnings)
+
+
+# ----------------------------------------------------------------------------- the command
+
+
+def holds_series_from_files(files, infos, *, rig: Rig) -> list[HoldsSeries]:
+    """Every recording's filtered resistance up to its last used hold, with its holds (for the memory fit).
+
+    ``infos``: the :class:`~acquire.commands.calibrate.HoldInfo` list of the
+    static fit (which intervals were used as holds).
+    """
+    out = []
+    for f in files:
+        with open_recording(f, allow_live=False) as rec:
+            mine = sorted((i for i in infos if i.file == str(rec.path)), key=lambda i: i.t_start_s)
+            used = [i for i in mine if i.used]
+            if not used:
+                continue
+            n = rec.n_frames
+            t = rec.file["raw"]["t_device_s"][:n]
+            rate, _ = recording_rate_hz(rec, t_device_s=t[: min(n, 100_000)])
+            bits, _ = _adc_bits(rec)
+            stop = int(np.searchsorted(t, max(i.t_end_s for i in used), "right"))
+            r = filtered_intervals(rec, rig=rig, rate_hz=rate, adc_bits=bits, intervals=[(0, stop)])[0]
+            out.append(HoldsSeries(
+                t_s=np.asarray(t[:stop], float), resistance_ohm=r, rate_hz=rate,
+                holds=tuple(HoldSpan(i.label, i.t_start_s, i.t_end_s, np.asarray(i.reference_per_m, float))
+                            for i in used),
+                barriers=tuple((i.t_start_s, i.t_end_s) for i in mine if not i.used)))
+    return out
+
+
+from acquire.commands.calibrate import CalibrationRun  # noqa: E402  (calibrate imports this module lazily)
+
+
+@dataclass
+class MemoryCalibrationRun(CalibrationRun):
+    """A :class:`~acquire.commands.calibrate.CalibrationRun` with the memory fit's report (None: not fitted)."""
+
+    memory_report: MemoryReport | None = None
+    memory_note: str = ""
+
+
+def add_memory(run: CalibrationRun, *, files, rig: Rig, motion: Sequence[MotionSeries] = (),
+               static: bool = False) -> MemoryCalibrationRun:
+    """The run with the strip's memory fitted (:func:`fit_strip_memory`), or as it is with ``static``.
+
+    Warnings go into the run's ``notes`` (prefixed ``memory:``). A memory fit
+    that fails leaves the static calibration and says why in a note.
+
+    Raises
+    ------
+    UserError
+        Motion sessions of the wrong shape (see :func:`fit_strip_memory`).
+    """
+    base = {f.name: getattr(run, f.name) for f in dataclasses.fields(CalibrationRun)}
+    if static:
+        return MemoryCalibrationRun(**base, memory_note="not fitted (--static)")
+    try:
+        holds = holds_series_from_files(files, run.infos, rig=rig)
+        res = fit_strip_memory(run.calibration, holds, motion, rig=rig, degree=run.degree)
+    except (CalibrationError, ValueError) as exc:
+        note = f"memory: not fitted ({exc}); the calibration is static"
+        return MemoryCalibrationRun(**{**base, "notes": [*run.notes, note]}, memory_note=note)
+    notes = [*run.notes, *(f"memory: {w}" for w in res.report.all_warnings)]
+    return MemoryCalibrationRun(**{**base, "calibration": res.calibration, "report": res.fit_report,
+                                   "notes": notes}, memory_report=res.report)
+
+
+def memory_report_lines(run) -> list[str]:
+    """The memory part of calibrate's printed report (empty for a run without one)."""
+    rep = getattr(run, "memory_report", None)
+    note = getattr(run, "memory_note", "")
+    if rep is None:
+        return [f"memory: {note}"] if note and not note.startswith("memory:") else ([note] if note else [])
+    kept = [s.segment for s in rep.segments if s.kept]
+    head = (f"memory (creep and hysteresis) kept in segment(s) {', '.join(map(str, kept))}:" if kept
+            else "memory (creep and hysteresis): not kept, the calibration is static:")
+    return [head, rep.text()]
+
+
+def print_memory_report(run, stream: TextIO) -> None:
+    """Print :func:`memory_report_lines` to ``stream``."""
+    for line in memory_report_lines(run):
+        print(line, file=stream)
