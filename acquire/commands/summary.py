@@ -65,7 +65,43 @@ def inspect_summary(path) -> dict:
             "derived": rec.has_derived,
             "derived_force": rec.has_derived and "force_n" in rec.file["derived"],
             "actuation": _actuation_summary(rec, n),
+            "flat_drift": _flat_drift_summary(rec),
         }
+
+
+def _flat_drift_summary(rec) -> dict | None:
+    """How far the flat reading moved since the recording's calibration, from its ``flat`` labels (or None)."""
+    if rec.calibration_json is None or rec.n_frames == 0:
+        return None
+    from acquire.commands.common import _adc_bits, filtered_intervals, recording_rate_hz, recording_rig
+    from acquire.core.calibration import Calibration, CalibrationError
+    from acquire.core.drift import flat_drift
+    from acquire.core.labels import LabelError, parse_label
+
+    def is_flat(text: str) -> bool:
+        try:
+            return parse_label(text) == 0.0
+        except LabelError:
+            return False
+
+    t = rec.file["raw"]["t_device_s"][: rec.n_frames]
+    spans = [(int(np.searchsorted(t, lb.t_start_s)), int(np.searchsorted(t, lb.t_end_s)))
+             for lb in rec.labels() if is_flat(lb.text)]
+    spans = [(a, b) for a, b in spans if b - a >= 10]
+    if not spans:
+        return None
+    try:
+        cal = Calibration.from_json(rec.calibration_json, source=f"{rec.path}: calibration_json")
+        rig = recording_rig(rec)
+        rate, _ = recording_rate_hz(rec, t_device_s=t[:100_000])
+        bits, _ = _adc_bits(rec)
+        # the second half of each flat hold: the strip has settled there
+        frames = filtered_intervals(rec, rig=rig, rate_hz=rate, adc_bits=bits,
+                                    intervals=[((a + b) // 2, b) for a, b in spans])
+        report = flat_drift(cal, np.concatenate(frames))
+    except (CalibrationError, ValueError) as exc:
+        return {"verdict": f"not measured ({exc})", "needs_tare": False}
+    return {"verdict": report.verdict, "needs_tare": bool(report.needs_tare)}
 
 
 _COLUMN_CHUNK = 65536  # rows read at a time for one channel's range
@@ -137,7 +173,8 @@ def format_summary(s: dict) -> str:
     clock = s.get("clock")
     if clock and clock["span_s"] < 60.0:
         # over seconds, link latency jitter (ms) dwarfs any clock drift (us)
-        lines.append(f"  clock       recording too short for a drift estimate ({clock['span_s']:.0f} s; needs a minute)")
+        lines.append(f"  clock       no drift estimate: the recording spans {s['duration_s']:.1f} s of device time "
+                     "(a clock drift shows over a minute or more)")
     elif clock and clock["points"] >= 2 and clock["drift_ppm"] == clock["drift_ppm"]:
         lines.append(
             f"  clock       host - device drift {clock['drift_ppm']:+.1f} ppm, offset {clock['offset_s'] * 1e3:.2f} ms "
@@ -152,6 +189,9 @@ def format_summary(s: dict) -> str:
     if act:
         span = f"{act['min']:.4g} .. {act['max']:.4g} {act['unit']}" if act["min"] is not None else "no frames"
         lines.append(f"  actuation   channel {act['channel']} ({act['unit'] or 'no unit'}), recorded {span}")
+    drift = s.get("flat_drift")
+    if drift:
+        lines.append(f"  flat drift  {drift['verdict']} (from the flat labels, against the recording's calibration)")
     derived = "no"
     if s["derived"]:
         derived = "yes, with force_n (estimated force, N)" if s.get("derived_force") else "yes, no force"
