@@ -4,8 +4,8 @@ Every command that writes a file (a recording, a calibration, an image, a
 ground-truth or marker file) calls :func:`check_output` before it opens
 anything, so the rules are the same everywhere:
 
-- the folder must exist and the name must fit the file system (255 bytes a
-  name on Linux file systems);
+- the folder must exist and be writable, and the name must fit the file
+  system (255 bytes a name, 4096 bytes a path on Linux);
 - the output must not be one of the command's inputs (whatever the flags);
 - an existing file is refused, unless the command allows ``--force`` for its
   kind of output (a calibration, an image); an existing *recording* (an HDF5
@@ -21,13 +21,15 @@ from typing import Iterable
 
 from acquire.errors import UserError
 
-__all__ = ["check_output", "is_hdf5_file", "check_path_name"]
+__all__ = ["check_output", "check_folder", "is_hdf5_file", "check_path_name"]
 
 #: the first 8 bytes of every HDF5 file (HDF5 File Format Specification, "Format Signature")
 HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 
 #: longest file name (one path component) on ext4, XFS, btrfs and tmpfs, bytes
 NAME_MAX_BYTES = 255
+#: longest path the Linux kernel accepts in one call, bytes, its terminating NUL included (PATH_MAX)
+PATH_MAX_BYTES = 4096
 
 
 def is_hdf5_file(path: str | os.PathLike) -> bool:
@@ -46,7 +48,33 @@ def check_path_name(path: str | os.PathLike, *, option: str = "") -> Path:
     for part in p.parts:
         if len(os.fsencode(part)) > NAME_MAX_BYTES:
             raise UserError(f"{where}{str(p)[:60]}...: a name in this path is longer than {NAME_MAX_BYTES} bytes")
+    if len(os.fsencode(os.path.abspath(p))) >= PATH_MAX_BYTES:
+        raise UserError(f"{where}{str(p)[:60]}...: the path is longer than {PATH_MAX_BYTES - 1} bytes")
     return p
+
+
+def check_folder(path: str | os.PathLike, *, option: str = "--out") -> Path:
+    """Check that the folder a new file ``path`` goes into exists and may be written; returns ``path``.
+
+    Raises
+    ------
+    UserError
+        The name is too long, the folder is missing, is a file, or cannot be
+        written (permissions, a read-only file system); one line naming it.
+    """
+    out = check_path_name(path, option=option)
+    folder = out.parent
+    try:
+        if not folder.is_dir():
+            if folder.exists():
+                raise UserError(f"{option} {out}: {folder} is a file, not a folder")
+            raise UserError(f"{option} {out}: folder {folder} does not exist")
+    except OSError as exc:  # a folder on the way that may not be searched
+        raise UserError(f"{option} {out}: folder {folder} cannot be reached ({exc.strerror or exc})") from None
+    # access() also reports a read-only file system, where even root cannot write
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise UserError(f"{option} {out}: folder {folder} is not writable")
+    return out
 
 
 def _same_file(a: Path, b: Path) -> bool:
@@ -85,9 +113,7 @@ def check_output(
     UserError
         One line naming the file and the reason.
     """
-    out = check_path_name(path, option=option)
-    if not out.parent.is_dir():
-        raise UserError(f"{option} {out}: folder {out.parent} does not exist")
+    out = check_folder(path, option=option)
     for p in inputs:
         p = Path(p)
         if _same_file(out, p) or Path(os.path.abspath(out)) == Path(os.path.abspath(p)):
