@@ -257,7 +257,8 @@ class Recorder(Worker):
         finally:
             try:
                 if self.error is None or self._clean_stop:
-                    self._derived_tail.flush(f)
+                    if self.error is None or self._tail_fits(f):
+                        self._derived_tail.flush(f)
                     self._close_labels(f)
                 f.close()
             except Exception as exc:
@@ -280,7 +281,7 @@ class Recorder(Worker):
         closed cleanly. Room needed: what the next flush can write, see
         :func:`_flush_bytes`.
         """
-        need = _flush_bytes(f, pending_frames)
+        need = _flush_bytes(f, pending_frames, held=self._derived_tail)
         size = self.path.stat().st_size
         soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
         if soft != resource.RLIM_INFINITY and size + need > soft:
@@ -291,11 +292,33 @@ class Recorder(Worker):
             return f"the disk is nearly full ({free / 1e6:.1f} MB free)"
         return None
 
+    def _tail_fits(self, f: h5py.File) -> bool:
+        """After a stop for room: whether the /derived rows held in memory fit (else they are left out)."""
+        need = _METADATA_BYTES + self._derived_tail.bytes_held()
+        soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+        size = self.path.stat().st_size
+        if soft != resource.RLIM_INFINITY and size + need > soft:
+            return False
+        st = os.statvfs(self.path.parent)
+        return st.f_bavail * st.f_frsize >= need
+
     def _write_pending(self, f: h5py.File) -> None:
-        problem = self._room_problem(f, self._cursor.pending)
+        pending = self._cursor.pending
+        problem = self._room_problem(f, pending)
+        fits = pending
         if problem is not None:
-            raise _NoRoom(problem)
-        block = self._cursor.read()
+            # write what still fits (the most frames whose flush fits), then stop
+            lo, hi = 0, pending
+            while lo < hi:
+                mid = (lo + hi + 1) // 2
+                if self._room_problem(f, mid) is None:
+                    lo = mid
+                else:
+                    hi = mid - 1
+            fits = lo
+            if fits == 0:
+                raise _NoRoom(problem)
+        block = self._cursor.read(max_frames=fits)
         if self.max_frames is not None:
             room = self.max_frames - self.frames_written
             if len(block) >= room:
@@ -333,6 +356,8 @@ class Recorder(Worker):
         self._write_labels(f)
         self._write_events(f)
         self._write_counters(f)
+        if problem is not None:
+            raise _NoRoom(problem)
 
     def _write_labels(self, f: h5py.File) -> None:
         g = f["labels"]
@@ -430,6 +455,14 @@ class _WholeChunks:
             _append(ds, data[:whole])
         self._tail[ds.name] = data[whole:]
 
+    def rows_held(self, name: str) -> int:
+        tail = self._tail.get(name)
+        return 0 if tail is None else int(tail.shape[0])
+
+    def bytes_held(self) -> int:
+        """Bytes the held rows take as whole chunks, uncompressed (a bound for writing them)."""
+        return sum(int(t.nbytes) for t in self._tail.values())
+
     def flush(self, f: h5py.File) -> None:
         """Write what waits (at the end of the recording)."""
         for name, tail in self._tail.items():
@@ -444,7 +477,7 @@ _METADATA_BYTES = 64 << 10
 _FRAME_GROUPS = ("raw", "derived")
 
 
-def _flush_bytes(f: h5py.File, pending_frames: int) -> int:
+def _flush_bytes(f: h5py.File, pending_frames: int, held: "_WholeChunks | None" = None) -> int:
     """Most bytes the next flush can add to the file: every chunk it writes, whole and uncompressed.
 
     For the per-frame datasets (/raw, /derived) that is the partly filled last
@@ -459,7 +492,10 @@ def _flush_bytes(f: h5py.File, pending_frames: int) -> int:
             return
         rows = obj.chunks[0]
         chunk_bytes = int(np.prod(obj.chunks)) * obj.dtype.itemsize
-        if name.split("/")[0] in _FRAME_GROUPS:
+        if name.split("/")[0] == "derived" and held is not None:
+            # written through _WholeChunks: only the chunks the held rows and the new ones complete
+            total += ((held.rows_held(obj.name) + pending_frames) // rows) * chunk_bytes
+        elif name.split("/")[0] in _FRAME_GROUPS:
             n0 = obj.shape[0]
             touched = -(-(n0 + pending_frames) // rows) - n0 // rows
             total += max(1, touched) * chunk_bytes
