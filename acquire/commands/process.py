@@ -4,6 +4,7 @@ Threads: the calling (main) thread.
 """
 from __future__ import annotations
 
+import glob
 import os
 import sys
 from pathlib import Path
@@ -49,7 +50,7 @@ def _copy_attrs(src, dst, *, skip=()) -> None:
 
 def _partial_path(out: Path) -> Path:
     """A temporary name beside ``out``; partial files of killed runs (their process gone) are removed."""
-    for old in out.parent.glob(f".{out.name}.*.partial"):
+    for old in out.parent.glob(f".{glob.escape(out.name)}.*.partial"):
         try:
             pid = int(old.name[len(out.name) + 2:-len(".partial")])
             os.kill(pid, 0)  # still running: not ours to remove

@@ -85,10 +85,16 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 __all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMemory", "StripMemory",
            "pi_inverse_parameters"]
+
+
+def _signal():
+    """scipy.signal, imported with the first memory model that needs it (about 1 s; not at start-up)."""
+    from scipy import signal
+
+    return signal
 
 _KIND = "tapcurve-strip-memory"
 _VERSION = 1
@@ -453,7 +459,7 @@ class Relaxation(_Stage):
             self._ba.append((b, a))
             if len(den) == 1:
                 continue  # no creep term: identity
-            self._zi_unit[:len(den) - 1, s] = signal.lfilter_zi(num, den)
+            self._zi_unit[:len(den) - 1, s] = _signal().lfilter_zi(num, den)
             groups.setdefault((b.tobytes(), a.tobytes()), (b, a, []))[2].append(s)
         self._groups = [(b, a, np.array(cols)) for b, a, cols in groups.values()]
         self._identity = np.array([len(d) == 1 for _, d in polys])
@@ -470,7 +476,7 @@ class Relaxation(_Stage):
             return self._run_small(x)
         out = x.copy()
         for b, a, cols in self._groups:
-            out[:, cols], self._zi[:, cols] = signal.lfilter(b, a, x[:, cols], axis=0,
+            out[:, cols], self._zi[:, cols] = _signal().lfilter(b, a, x[:, cols], axis=0,
                                                              zi=self._zi[:, cols])
         return out
 
@@ -504,7 +510,7 @@ class Relaxation(_Stage):
                     k = int(np.argmax(ok))
                     zi = self._zi_unit[:, s] * xs[k]
                     out[:k, s] = np.nan
-                out[k:, s], self._zi[:, s] = signal.lfilter(b, a, xs[k:], zi=zi)
+                out[k:, s], self._zi[:, s] = _signal().lfilter(b, a, xs[k:], zi=zi)
         self._started = not np.isnan(self._zi).any()
         return out
 

@@ -38,7 +38,6 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 
 from acquire.errors import UserError
 from acquire.rig import Rig
@@ -159,6 +158,8 @@ class Camera:
         Points on the curve at ``markers_s_m`` (cubic spline through the shape
         points), moved ``markers_offset_m`` along the +y normal.
         """
+        from scipy.interpolate import CubicSpline  # only when filming: not at start-up
+
         spline = CubicSpline(s_m, xy_m, axis=1)
         p = spline(self.marker_s_m)  # (F, K, 2)
         d = spline(self.marker_s_m, 1)

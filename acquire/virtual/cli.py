@@ -7,8 +7,7 @@ from __future__ import annotations
 
 import argparse
 import math
-import signal
-import threading
+import sys
 from pathlib import Path
 
 from acquire.errors import UserError
@@ -248,30 +247,25 @@ def _check_out_path(text, option: str, *, symlink: bool) -> None:
 
 
 def run_virtual_device(args) -> int:
-    """Run until SIGINT or SIGTERM; print the port path on one line first.
+    """Run until SIGINT, SIGTERM or SIGHUP; print the port path on one line first.
 
-    Runs in the main thread (it installs signal handlers and restores them).
-    Returns 0 after a clean stop.
+    Runs in the main thread (:class:`acquire.session.signals.StopSignals`
+    installs the handlers and restores them). Returns 0 after a clean stop,
+    1 if the device thread failed.
     """
+    from acquire.session.signals import StopSignals
+
     dev = build_virtual_finger(args)
-    done = threading.Event()
-    previous = {}
-
-    def on_signal(signum, frame):
-        done.set()
-
-    for sig in (signal.SIGINT, signal.SIGTERM):
-        previous[sig] = signal.signal(sig, on_signal)
-    try:
-        dev.start()
-        print(dev.path, flush=True)
-        while not done.wait(0.5):
-            if dev.error is not None:
-                break
-    finally:
+    with StopSignals() as stop:
         try:
-            dev.stop()
+            dev.start()
+            print(dev.path, flush=True)
+            while not stop.event.wait(0.5):
+                if dev.error is not None:
+                    break
         finally:
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
+            dev.stop()
+    if dev.error is not None:
+        print(f"tapcurve: virtual finger failed: {dev.error}", file=sys.stderr)
+        return 1
     return 0
