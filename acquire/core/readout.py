@@ -5,7 +5,7 @@ segment (tap k to tap k+1) and says which frames and segments cannot be
 trusted. Every kind of readout is a subclass of :class:`Readout`; the rig file's
 ``[readout] kind`` picks one through :func:`make_readout`.
 
-The default kind, ``divider`` (CONTRACTS.md section 2): the excitation voltage,
+The default kind, ``divider`` (the readout formula in the README's rig file section): the excitation voltage,
 which is also the ADC reference, drives ``r_ref_ohm`` into tap 0; the strip runs
 to tap S, which is ground; channel ``rig.tap_channels[k]`` measures tap k. With
 ``v_k = code_k / 2**adc_bits`` and ``v_S = 0``::

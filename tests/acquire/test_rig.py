@@ -18,7 +18,7 @@ channels = ["tap0", "tap1", "tap2", "tap3", "tap4", "tap5"]   # what channel k m
 
 
 def test_contract_example():
-    # the example of CONTRACTS.md section 3, verbatim
+    # the example of the README's rig file section, verbatim
     rig = parse_rig(CONTRACT_EXAMPLE, source="example.toml")
     assert rig.n_segments == 6
     assert np.allclose(rig.segment_lengths_m, 0.016)
@@ -163,11 +163,11 @@ def test_bounds_themselves_are_accepted():
 
 
 # ----------------------------------------------------------------------------- markers, actuation
-# Table layouts of CONTRACTS.md sections 7 ([markers]) and 8 ([actuation]).
+# Table layouts of the README's rig file section ([markers], [actuation]).
 
 def test_markers_default_one_per_tap():
     rig = parse_rig(CONTRACT_EXAMPLE)
-    # S + 1 markers at the taps (CONTRACTS.md section 7): 0, 16, ..., 96 mm
+    # S + 1 markers at the taps (the README's rig file section, [markers]): 0, 16, ..., 96 mm
     np.testing.assert_allclose(rig.markers_s_m, np.arange(7) * 0.016)
     assert rig.markers_offset_m.tolist() == [0.0] * 7 and not rig.markers_given
     assert rig.actuation is None
@@ -220,7 +220,7 @@ def test_actuation_table():
     assert rig.tap_channels.tolist() == [0, 1, 2, 3, 4, 5] and act.index not in rig.tap_channels
     codes = np.zeros((2, 7), dtype=np.uint16)
     codes[:, 6] = [100, 600]
-    # value = (code - offset_code) * per_code (CONTRACTS.md section 8): 0 and 500 * 0.02 = 10 kPa
+    # value = (code - offset_code) * per_code (the README's rig file section, [actuation]): 0 and 500 * 0.02 = 10 kPa
     np.testing.assert_allclose(act.value(codes), [0.0, 10.0])
 
 

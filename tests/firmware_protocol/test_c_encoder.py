@@ -13,7 +13,7 @@ Outside references used below:
 - the ``cobs`` package from PyPI, an implementation of Cheshire & Baker's
   COBS (IEEE/ACM Trans. Networking, 1999) independent of this project;
 - ``../shared/vectors/packets.json``: packets made by an encoder written
-  independently of this project (shared/CONTRACTS.md section 1).
+  independently of this project (firmware_protocol/PROTOCOL.md).
 """
 from __future__ import annotations
 
@@ -439,7 +439,7 @@ def test_demo_stream_decodes_contiguously(c_build):
     s, controls, dec = _demo(c_build, n, 1000)
     assert dec.dropped == 0 and dec.drops == {cause: 0 for cause in fp.DROP_CAUSES}
     assert len(s["seq"]) == n
-    # host-side unwrapping as CONTRACTS.md section 1 describes: differences modulo the wrap
+    # host-side unwrapping as firmware_protocol/PROTOCOL.md describes: differences modulo the wrap
     assert np.all(np.diff(s["seq"]) % 65536 == 1)
     assert s["seq"][0] == 0 and np.any(np.diff(s["seq"]) < 0)
     assert np.all(np.diff(s["t_us"]) % 2**32 == 1000)  # exact 1 kHz pacing

@@ -1,4 +1,4 @@
-"""Host command helpers (CONTRACTS.md section 1 command table)."""
+"""Host command helpers (firmware_protocol/PROTOCOL.md command table)."""
 from __future__ import annotations
 
 import pytest

@@ -131,7 +131,7 @@ def test_overlong_frame_same_for_any_chunking():
 
 
 def test_long_hello_is_kept():
-    # a hello may carry many extra keys (CONTRACTS.md section 1): 2 kB of JSON decodes whole
+    # a hello may carry many extra keys (firmware_protocol/PROTOCOL.md): 2 kB of JSON decodes whole
     info = {"protocol": 1, "channels": 6, "rate_hz": 1000, "adc_bits": 12, "notes": "x" * 2000}
     dec = StreamDecoder()
     items = []

@@ -346,7 +346,7 @@ def test_process_writes_derived(calibration, holds_file, tmp_path, capsys):
         assert xy.shape == (n, s_m.shape[0], 2) and xy.dtype == np.float32 and xy.attrs["units"] == "m"
         tap_end = int(d.attrs["tap_index"][-1])
         assert s_m[tap_end] == pytest.approx(rig.sensor_length_m, abs=1e-12)
-        # CONTRACTS.md section 4: s_m runs from 0 to the sensor length (the fingertip is not part of it)
+        # the README's recording layout: s_m runs from 0 to the sensor length (the fingertip is not part of it)
         assert tap_end == s_m.shape[0] - 1 and s_m[-1] == pytest.approx(rig.sensor_length_m, abs=1e-12)
         # in each hold the curvature is the reference, and the sensor's end lies on the circle
         t = f["raw/t_device_s"][:]

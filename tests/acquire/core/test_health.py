@@ -118,7 +118,7 @@ KEYWORDS = ("open tap", "short", "noise", "stuck")
 @pytest.mark.parametrize("seed", [0, 1, 2])
 def test_each_injected_fault_is_named(rig, case, seed):
     # ground truth: the fault the simulator injects; the model's electrics are the divider of
-    # CONTRACTS.md section 2 (Ohm's law), its floating input picks up 50 Hz as real open inputs do
+    # the readout formula in the README's rig file section (Ohm's law), its floating input picks up 50 Hz as real open inputs do
     faults, word = FAULT_CASES[case]
     model = FingerModel(rig=rig, faults=faults, seed=seed)
     for t0 in (0.0, 4.0):

@@ -1,6 +1,6 @@
 """One label grammar: recording labels, calibration references and the virtual finger's jig holds agree.
 
-The grammar is the contract's (CONTRACTS.md section 5: ``flat``, ``radius=25mm``,
+The grammar is the contract's (the README's commands and calibration sections: ``flat``, ``radius=25mm``,
 ``curvature=40/m``, negative values allowed; section 8: ``force=1.2N``,
 ``force=0N``, ``force=-0.4N``, ``force=350mN``). Expected values are plane
 geometry (curvature = 1 / radius) and SI prefixes (1 mN = 1e-3 N, 1 cm = 1e-2 m).
@@ -109,7 +109,7 @@ def test_absurd_curvature_names_the_label(text):
 def test_force_labels(text, newtons):
     assert parse_force_label(text) == pytest.approx(newtons, rel=1e-12)
     assert check_label_text(text) == text.encode("utf-8")
-    assert parse_label(text) is None  # a force hold says nothing about shape (CONTRACTS.md section 8)
+    assert parse_label(text) is None  # a force hold says nothing about shape (the README's rig file section, [actuation])
     with pytest.raises(LabelError, match="states no shape"):
         parse_hold_label(text)
 

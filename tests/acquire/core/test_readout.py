@@ -86,7 +86,7 @@ channels = ["pressure", "tap2", "tap0", "tap1"]
 
 
 def test_swapped_taps_are_flagged(rig):
-    # A healthy chain reads v_0 > v_1 > ... > 0 (CONTRACTS.md section 2, from Ohm's law).
+    # A healthy chain reads v_0 > v_1 > ... > 0 (the readout formula in the README's rig file section, from Ohm's law).
     r_true = np.full((3, rig.n_segments), 10000.0)
     codes = ideal_codes(r_true, rig.r_ref_ohm)
     codes[1, [1, 2]] = codes[1, [2, 1]]  # frame 1: tap 1 and tap 2 wires swapped

@@ -162,7 +162,7 @@ def test_raw_messages_arrive_in_order_with_fields(ring, publisher_factory):
 
 
 def _divider_resistance(codes, *, r_ref_ohm: float, adc_bits: int) -> np.ndarray:
-    """CONTRACTS.md section 2: R_k = r_ref (v_k - v_{k+1}) / (1 - v_0), v = code / 2^bits, v_S = 0."""
+    """the readout formula in the README's rig file section: R_k = r_ref (v_k - v_{k+1}) / (1 - v_0), v = code / 2^bits, v_S = 0."""
     v = np.append(np.asarray(codes, dtype=np.float64) / 2**adc_bits, 0.0)
     return r_ref_ohm * (v[:-1] - v[1:]) / (1.0 - v[0])
 

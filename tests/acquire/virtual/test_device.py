@@ -1,6 +1,6 @@
 """The virtual finger over a real pseudo-terminal, read with pyserial.
 
-The reference for everything on the wire is wire protocol v1 (CONTRACTS.md
+The reference for everything on the wire is wire protocol v1 (the README
 section 1) as decoded by ``firmware_protocol.StreamDecoder``; the ground
 truth is the device's own record (``truth_for`` and the truth file), which
 the model tests check against closed forms.
@@ -127,7 +127,7 @@ def host(device):
 
 
 def test_hello_and_command_replies(device, host):
-    # CONTRACTS.md section 1: hello keys, one reply per command, OK/ERR texts.
+    # firmware_protocol/PROTOCOL.md: hello keys, one reply per command, OK/ERR texts.
     hello = host.ask(b"HELLO?\n", lambda i: isinstance(i, fp.Hello)).info
     rig = load_rig(None)
     assert hello["protocol"] == 1 and isinstance(hello["firmware"], str)
@@ -145,7 +145,7 @@ def test_hello_and_command_replies(device, host):
 
 
 def test_stream_is_contiguous_and_matches_truth(device, host):
-    # Sample packets: seq +1 each, t_us +1e6/rate each (CONTRACTS.md section 1);
+    # Sample packets: seq +1 each, t_us +1e6/rate each (firmware_protocol/PROTOCOL.md);
     # codes equal the device's own record of what it made.
     assert host.reply(b"START\n") == "OK START"
     block = host.frames(n=400)
@@ -170,7 +170,7 @@ def test_stream_is_contiguous_and_matches_truth(device, host):
 
 
 def test_set_hold_changes_the_finger(device, host):
-    # The jig's curvature (label grammar of CONTRACTS.md section 5) shows up
+    # The jig's curvature (label grammar of the README's commands and calibration sections) shows up
     # in the truth of the frames made after the change.
     host.reply(b"START\n")
     host.frames(n=50)
@@ -192,7 +192,7 @@ def test_set_hold_changes_the_finger(device, host):
 
 def test_vanish_and_return_as_rebooted_device(device):
     # The brief's reboot semantics (hello again, seq and clock from 0) and
-    # CONTRACTS.md section 1 (the host unwraps from whatever comes).
+    # firmware_protocol/PROTOCOL.md (the host unwraps from whatever comes).
     host = Host(device.path)
     try:
         host.reply(b"START\n")
@@ -222,7 +222,7 @@ def test_vanish_and_return_as_rebooted_device(device):
 
 
 def test_vanish_without_reboot_leaves_a_seq_gap(device):
-    # CONTRACTS.md section 1: lost frames show as a jump in seq, never papered over.
+    # firmware_protocol/PROTOCOL.md: lost frames show as a jump in seq, never papered over.
     host = Host(device.path)
     host.reply(b"START\n")
     before = host.frames(n=100)
@@ -285,7 +285,7 @@ def test_drop_and_corrupt_rates(tmp_path):
 
 
 def test_transmit_buffer_overflow_flags_next_packet():
-    # CONTRACTS.md section 1: whole packets that do not fit are dropped, the
+    # firmware_protocol/PROTOCOL.md: whole packets that do not fit are dropped, the
     # next packet carries status bit 1, the gap in seq counts them.
     with VirtualFinger(rate_hz=20000, tx_buffer_bytes=1024) as dev:
         host = Host(dev.path)
@@ -335,7 +335,7 @@ def test_truth_file_matches_stream(tmp_path):
 
 
 def test_time_scale_speeds_up_frames_not_timestamps():
-    # t_us advances by 1e6 / rate per frame (CONTRACTS.md section 1) whatever
+    # t_us advances by 1e6 / rate per frame (firmware_protocol/PROTOCOL.md) whatever
     # the pacing; the wall-time bound is generous (2 shared cores).
     with VirtualFinger(time_scale=25.0) as dev:
         host = Host(dev.path)
@@ -402,7 +402,7 @@ def _parse(argv):
     ],
 )
 def test_cli_bad_values_name_the_option(argv, option):
-    # CONTRACTS.md section 5: bad input gives one line naming the value at fault.
+    # the README's commands and calibration sections: bad input gives one line naming the value at fault.
     with pytest.raises(UserError, match=option) as info:
         build_virtual_finger(_parse(argv))
     assert "\n" not in str(info.value)
@@ -414,7 +414,7 @@ def test_cli_bad_link_folder(tmp_path):
 
 
 def test_cli_runs_until_sigterm(tmp_path):
-    # CONTRACTS.md section 5: prints its path, exits 0 on a clean stop (SIGTERM).
+    # the README's commands and calibration sections: prints its path, exits 0 on a clean stop (SIGTERM).
     link = tmp_path / "finger"
     script = (
         "import argparse, sys\n"

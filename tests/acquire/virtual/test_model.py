@@ -159,7 +159,7 @@ def test_truth_curvature_is_segment_mean(model, rig):
 
 
 def test_shape_starts_at_origin_and_ends_at_tip(model, rig):
-    # Conventions of CONTRACTS.md: curve starts at (0,0) heading +x; arc
+    # Conventions of the README (rig file: sign convention): curve starts at (0,0) heading +x; arc
     # length of the polyline equals the sensor length (inextensible).
     t = np.linspace(0, 6, 7)
     s, xy = model.shape(t)
@@ -174,7 +174,7 @@ def test_shape_starts_at_origin_and_ends_at_tip(model, rig):
 
 
 def test_hold_labels():
-    # Label grammar of CONTRACTS.md section 5; radius r gives curvature 1/r.
+    # Label grammar of the README's commands and calibration sections; radius r gives curvature 1/r.
     assert parse_hold_label("flat") == 0.0
     assert parse_hold_label("radius=25mm") == pytest.approx(40.0)
     assert parse_hold_label("radius=-0.05m") == pytest.approx(-20.0)
@@ -268,7 +268,7 @@ def test_divider_matches_nodal_analysis(model, rig):
 
 
 def test_codes_reproduce_segment_resistance(rig):
-    # CONTRACTS.md section 2 by algebra (series current (1 - v0)/r_ref, Ohm's
+    # the readout formula in the README's rig file section by algebra (series current (1 - v0)/r_ref, Ohm's
     # law over each segment): R_k = r_ref (v_k - v_{k+1}) / (1 - v_0).
     # With no noise the only error is quantisation, +-0.5 LSB per code.
     m = FingerModel(rig=rig, seed=2, noise_lsb=0.0)
@@ -334,7 +334,7 @@ def _divider_r(codes, rig, bits):
 
 def test_fault_short_taps_reads_zero_ohm(rig):
     # Shorted taps are one node: no voltage across the segments between them,
-    # so the divider formula of CONTRACTS.md section 2 gives about 0 ohm.
+    # so the divider formula of the readout formula in the README's rig file section gives about 0 ohm.
     m = FingerModel(rig=rig, seed=1, faults=Faults(short_taps=(1, 3)))
     healthy = FingerModel(rig=rig, seed=1)
     t = np.linspace(0, 8, 800)
@@ -382,7 +382,7 @@ def test_fault_check_names_the_field(rig):
 
 
 def test_pressure_channel_follows_actuation():
-    # A non-tap channel named "pressure" carries the actuation (CONTRACTS.md
+    # A non-tap channel named "pressure" carries the actuation (the README
     # section 3: recorded like any other, ignored by the divider).
     text = load_rig(None).text.replace(
         'channels = ["tap0", "tap1", "tap2", "tap3", "tap4", "tap5"]',
