@@ -54,6 +54,7 @@ def _cpu_over(seconds: float, pump=None) -> tuple[float, float, float]:
     return time.process_time() - p0, time.thread_time() - t0, time.monotonic() - w0
 
 
+# long on purpose: a benchmark's one procedure, read top to bottom
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="short run (a check that the benchmark works)")

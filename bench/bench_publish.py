@@ -121,6 +121,7 @@ def produce(ring: FrameRing, *, rate_hz: float, block_frames: int, duration_s: f
         k += 1
 
 
+# long on purpose: a benchmark's one procedure, read top to bottom
 def main(argv=None) -> dict:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="2 s run that only checks the benchmark works")

@@ -77,6 +77,7 @@ def make_recording(path: Path, *, minutes: float, rate_hz: float = 1000.0, chunk
     return {"frames": n, "minutes": minutes, "write_s": time.perf_counter() - t0, "bytes": path.stat().st_size}
 
 
+# long on purpose: a benchmark's one procedure, read top to bottom
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="3-minute recording, fewer scrubs")

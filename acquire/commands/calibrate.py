@@ -72,6 +72,7 @@ class HoldInfo:
     note: str = ""
 
 
+# long on purpose: one pass over a recording's labels, kept together so each refusal names its label
 def holds_from_recording(
     rec: Recording,
     *,
@@ -267,6 +268,7 @@ class CalibrationRun:
     holds: list[Hold] = field(default_factory=list)
 
 
+# long on purpose: the steps of a calibration in order, each a call; most of the length is its docstring
 def calibrate_files(
     files: Sequence[str | os.PathLike],
     *,

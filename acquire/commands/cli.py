@@ -70,6 +70,7 @@ def _add_publish(p: argparse.ArgumentParser) -> None:
 _WITHOUT_SIMULATOR = frozenset({"record", "calibrate", "tare", "process", "replay", "ports", "inspect", "export"})
 
 
+# long on purpose: the whole command line as one table, read top to bottom
 def build_parser(*, simulator: bool = True) -> argparse.ArgumentParser:
     """The ``tapcurve`` argument parser.
 

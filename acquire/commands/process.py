@@ -141,6 +141,7 @@ def _notes_after(outside, nan_frames, n, cal) -> list[str]:
     return notes
 
 
+# long on purpose: mostly its docstring; the work is four calls
 def process_recording(
     file: str | os.PathLike,
     *,

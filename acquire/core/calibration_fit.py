@@ -269,6 +269,7 @@ def _segment_report(k, pts: _Points, sides, warn) -> tuple[SegmentReport, tuple]
     ), (x_lo, x_hi, k_lo, k_hi)
 
 
+# long on purpose: mostly its docstring (the model and its refusals)
 def fit_calibration(
     holds: Sequence[Hold | tuple],
     *,

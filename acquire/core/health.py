@@ -319,6 +319,7 @@ def _fmt_ohm(r: float) -> str:
 # ----------------------------------------------------------------------------- verdicts
 
 
+# long on purpose: one rule per fault, in the order the health table lists them
 def assess_health(
     codes: np.ndarray,
     t_device_s: np.ndarray,

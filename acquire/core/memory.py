@@ -90,10 +90,8 @@ __all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMe
            "pi_inverse_parameters"]
 
 
-def _signal():
-    """scipy.signal, imported with the first memory model that needs it (about 1 s; not at start-up)."""
+def _signal():  # scipy.signal, loaded with the first memory model (about 1 s), never at start-up
     from scipy import signal
-
     return signal
 
 _KIND = "tapcurve-strip-memory"
