@@ -86,8 +86,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMemory", "StripMemory",
-           "pi_inverse_parameters"]
+__all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMemory", "StripMemory", "pi_inverse_parameters"]
 
 
 def _signal():  # scipy.signal, loaded with the first memory model (about 1 s), never at start-up
