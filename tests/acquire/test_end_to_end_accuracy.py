@@ -44,8 +44,10 @@ TIME_SCALE = 4.0  # device seconds per wall second: the holds take a quarter of 
 HOLD_S = 1.5
 SETTLE_S = 0.3
 MOVING_S = 16.0
-HOLDS = ["flat", "curvature=15/m", "radius=40mm", "radius=25mm", "radius=20mm", "flat",
-         "radius=-100mm", "curvature=-15/m", "radius=-40mm", "flat"]
+# jig labels and the curvature each states, 1/m (curvature = 1 / radius, plane geometry)
+HOLDS = [("flat", 0.0), ("curvature=15/m", 15.0), ("radius=40mm", 25.0), ("radius=25mm", 40.0),
+         ("radius=20mm", 50.0), ("flat", 0.0), ("radius=-100mm", -10.0), ("curvature=-15/m", -15.0),
+         ("radius=-40mm", -25.0), ("flat", 0.0)]
 
 
 def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProcess:
@@ -64,6 +66,17 @@ def session(tmp_path_factory, wait_until):
         target = ring.written + n
         wait_until(lambda: ring.wait(target - 1, 0.05), timeout_s=60, what=f"{n} more frames (ring at {target})")
 
+    def wait_held(ring, dev, k: float) -> None:
+        """Until the newest frame the host has was made on the jig (the device's truth, boot 1): frames still
+        in the pty when the jig changed must not start the label, however far the reader lags."""
+        def held() -> bool:
+            block = ring.latest(1)
+            if len(block) == 0:
+                return False
+            return bool(np.all(np.abs(dev.truth_for(1, block.seq)["curvature_per_m"][-1] - k) < 0.5))
+
+        wait_until(held, timeout_s=60, what=f"frames held at {k:g} 1/m to reach the host")
+
     d = tmp_path_factory.mktemp("e2e")
     rig = load_rig(RIG_PATH)
     # the ideal strip: the figures in the README's accuracy table (the real strip has its own rows)
@@ -79,8 +92,9 @@ def session(tmp_path_factory, wait_until):
         rec.start()
         try:
             wait_frames(reader.ring, int(0.2 * RATE_HZ))
-            for label in HOLDS:
+            for label, k in HOLDS:
                 dev.set_hold(label)  # the finger goes onto the next jig
+                wait_held(reader.ring, dev, k)
                 wait_frames(reader.ring, int(SETTLE_S * RATE_HZ))
                 t0 = newest_time_s(reader.ring)
                 wait_frames(reader.ring, int(HOLD_S * RATE_HZ))

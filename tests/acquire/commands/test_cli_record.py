@@ -7,6 +7,7 @@ reader thread -> ring -> recorder thread -> HDF5.
 from __future__ import annotations
 
 import os
+import select
 import subprocess
 import sys
 from pathlib import Path
@@ -50,8 +51,12 @@ def device(tmp_path):
         text=True,
         cwd=REPO,
     )
-    line = proc.stdout.readline().strip()
-    assert line, proc.stderr.read()
+    # bounded: a device process that never prints its port fails the test instead of hanging it
+    ready, _, _ = select.select([proc.stdout], [], [], 60.0)
+    line = proc.stdout.readline().strip() if ready else ""
+    if not line:
+        proc.kill()
+        pytest.fail(f"virtual-device printed no port: {proc.stderr.read()}")
     yield line
     proc.terminate()
     try:

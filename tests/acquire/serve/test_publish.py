@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import select
 import socket
 import subprocess
 import sys
@@ -413,8 +414,9 @@ def test_cli_record_publishes(tmp_path):
     )
     rec = None
     try:
-        port = dev.stdout.readline().strip()
-        assert port, dev.stderr.read()
+        ready, _, _ = select.select([dev.stdout], [], [], 60.0)  # bounded: never hang on a silent device
+        port = dev.stdout.readline().strip() if ready else ""
+        assert port, "virtual-device printed no port"
         out = tmp_path / "rec.h5"
         rec = subprocess.Popen(
             [sys.executable, "-m", "display.cli", "record", "--port", port, "--rig", str(RIG), "--out", str(out),

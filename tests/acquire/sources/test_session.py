@@ -142,6 +142,7 @@ def test_recording_started_later_begins_at_the_click_and_keeps_labels(rig, calib
         wait_until(lambda: session.reader.ring.written > 1500, timeout_s=30, what="1.5 s of frames")
         newest_at_start = int(session.reader.ring.latest(1).seq[-1])
         session.start_recording(path)
+        newest_after_start = int(session.reader.ring.latest(1).seq[-1])
         with pytest.raises(UserError, match="already recording"):
             session.start_recording(tmp_path / "other.h5")
         wait_until(lambda: session.status()["recording_frames"] > 300, timeout_s=30, what="recorded frames")
@@ -167,8 +168,9 @@ def test_recording_started_later_begins_at_the_click_and_keeps_labels(rig, calib
         kinds = [x.decode() for x in f["events/kind"][:]]
         texts = [x.decode() for x in f["events/text"][:]]
         assert "derived" in f and f["derived/xy"].shape[0] == seq.shape[0]
-    # the file starts at the click: nothing from the 1.5 s before, no frame missing after
-    assert newest_at_start - 2 <= seq[0] <= newest_at_start + 50
+    # the file starts at the click: nothing from the 1.5 s before, no frame missing after (bracketed by the
+    # newest frame just before and just after the call, however many arrived in between)
+    assert newest_at_start < seq[0] <= newest_after_start + 1
     np.testing.assert_array_equal(np.diff(seq), 1)
     assert labels == ["radius=25mm"]
     # the label starts at a frame that was the newest while the button was pressed
@@ -295,7 +297,9 @@ def test_replay_plays_the_files_frames_in_order(recording, speed, wait_until):
     with h5py.File(recording, "r") as f:
         t_file = f["raw/t_device_s"][:]
         seq_file = f["raw/seq"][:]
+    span_s = 0.8 if speed == 1.0 else 2.5  # device seconds watched in one pass
     src = ReplaySource(path=recording).start()
+    passes = []
     try:
         src.wait_ready()
         with pytest.raises(UserError, match="0.1 .. 20"):
@@ -303,28 +307,36 @@ def test_replay_plays_the_files_frames_in_order(recording, speed, wait_until):
         src.set_speed(speed)
         assert src.wait_idle()
         assert src.speed == speed and src.status()["speed"] == speed
-        seen = []
 
-        def shown_until(t_end_s: float) -> bool:
+        def shown_until(seen: list, t_end_s: float) -> bool:
             snap = src.feed.snapshot()
             if snap is not None and (not seen or snap.seq != seen[-1][0]):
                 seen.append((snap.seq, snap.t_device_s))
             return snap is not None and snap.t_device_s >= t_end_s
 
-        span_s = 0.8 if speed == 1.0 else 2.5  # device seconds to watch
-        src.play()
-        wait_until(lambda: shown_until(span_s), timeout_s=60, what=f"the replay to reach {span_s} s", poll_s=0.002)
-        src.pause()
-        assert src.wait_idle() and not src.playing
+        # how many states this thread sees in one pass depends on the machine's load (at 10x a pass is
+        # 0.25 s of wall time): play passes from the start until one has shown several frames
+        while not any(len(p) >= 3 for p in passes):
+            assert len(passes) < 30, [len(p) for p in passes]
+            src.seek(t_file[0])
+            assert src.wait_idle()
+            seen = [(src.feed.snapshot().seq, src.feed.snapshot().t_device_s)]
+            src.play()
+            wait_until(lambda: shown_until(seen, span_s), timeout_s=60, what=f"the replay to reach {span_s} s",
+                       poll_s=0.002)
+            src.pause()
+            assert src.wait_idle() and not src.playing
+            passes.append(seen)
     finally:
         src.stop()
-    seqs = np.array([q for q, _ in seen])
-    t_dev = np.array([t for _, t in seen])
-    assert len(seqs) >= 3 and np.all(np.diff(seqs) > 0)
-    # each frame shown is the file's frame with that sequence number and device time
-    idx = np.searchsorted(seq_file, seqs)
-    np.testing.assert_array_equal(seq_file[idx], seqs)
-    np.testing.assert_array_equal(t_file[idx], t_dev)
+    for seen in passes:
+        seqs = np.array([q for q, _ in seen])
+        t_dev = np.array([t for _, t in seen])
+        assert seqs[0] == seq_file[0] and np.all(np.diff(seqs) > 0)
+        # each frame shown is the file's frame with that sequence number and device time
+        idx = np.searchsorted(seq_file, seqs)
+        np.testing.assert_array_equal(seq_file[idx], seqs)
+        np.testing.assert_array_equal(t_file[idx], t_dev)
 
 
 def test_replay_follows_a_growing_file(rig, tmp_path, wait_until):
