@@ -41,7 +41,8 @@ from acquire.commands.common import (
 )
 from acquire.rig import Rig, load_rig
 
-__all__ = ["HoldInfo", "CalibrationRun", "holds_from_recording", "choose_degree", "fit_warnings", "calibrate_files", "calibrate_command"]
+__all__ = ["HoldInfo", "CalibrationRun", "holds_from_recording", "choose_degree", "fit_warnings", "collect_holds",
+           "calibrate_files", "calibrate_command"]
 
 
 @dataclass
@@ -268,7 +269,40 @@ class CalibrationRun:
     holds: list[Hold] = field(default_factory=list)
 
 
-# long on purpose: the steps of a calibration in order, each a call; most of the length is its docstring
+def collect_holds(files, *, rig: Rig, table: dict | None = None) -> tuple[list, list, list, list]:
+    """Holds, interval infos, provenance and notes of labelled recordings (main thread).
+
+    Every recording is read as the live path would (its rate, ADC bits and
+    filters); the same file twice is refused (it would count its holds twice).
+    """
+    notes: list[str] = []
+    holds: list[Hold] = []
+    infos: list[HoldInfo] = []
+    recordings: list[dict] = []
+    for f in files:
+        with open_recording(f, allow_live=False) as rec:
+            if rec.recovered:
+                notes.append(f"{rec.path}: was left unclosed by its recorder; recovered")
+            notes.extend(check_recording_rig(recording_rig(rec), rig, where=str(rec.path)))
+            n = rec.n_frames
+            rate, rate_notes = recording_rate_hz(rec, t_device_s=rec.file["raw"]["t_device_s"][: min(n, 100_000)])
+            bits, bit_notes = _adc_bits(rec)
+            notes.extend(rate_notes + bit_notes)
+            h, i = holds_from_recording(rec, rig=rig, table=table, rate_hz=rate, adc_bits=bits)
+            holds.extend(h)
+            infos.extend(i)
+            # hashed after opening: a recovered file's bytes are those it keeps from now on
+            recordings.append({
+                "path": str(f),  # as given: the user's own context; the hash identifies the file
+                "name": Path(f).name,
+                "sha256": file_sha256(f),
+                "frames": n,
+                "holds": [x.label for x in i if x.used],
+            })
+            check_distinct_recordings(recordings)  # the same file twice would count its holds twice
+    return holds, infos, recordings, notes
+
+
 def calibrate_files(
     files: Sequence[str | os.PathLike],
     *,
@@ -296,31 +330,7 @@ def calibrate_files(
         Unreadable recording, rig disagreement, unreadable label, no usable
         hold, or a fit that cannot be made (no flat hold, wrong sign, ...).
     """
-    notes: list[str] = []
-    holds: list[Hold] = []
-    infos: list[HoldInfo] = []
-    recordings: list[dict] = []
-    for f in files:
-        with open_recording(f, allow_live=False) as rec:
-            if rec.recovered:
-                notes.append(f"{rec.path}: was left unclosed by its recorder; recovered")
-            notes.extend(check_recording_rig(recording_rig(rec), rig, where=str(rec.path)))
-            n = rec.n_frames
-            rate, rate_notes = recording_rate_hz(rec, t_device_s=rec.file["raw"]["t_device_s"][: min(n, 100_000)])
-            bits, bit_notes = _adc_bits(rec)
-            notes.extend(rate_notes + bit_notes)
-            h, i = holds_from_recording(rec, rig=rig, table=table, rate_hz=rate, adc_bits=bits)
-            holds.extend(h)
-            infos.extend(i)
-            # hashed after opening: a recovered file's bytes are those it keeps from now on
-            recordings.append({
-                "path": str(f),  # as given: the user's own context; the hash identifies the file
-                "name": Path(f).name,
-                "sha256": file_sha256(f),
-                "frames": n,
-                "holds": [x.label for x in i if x.used],
-            })
-            check_distinct_recordings(recordings)  # the same file twice would count its holds twice
+    holds, infos, recordings, notes = collect_holds(files, rig=rig, table=table)
     if table is not None:
         seen = {i.label for i in infos}
         unused = [k for k in table if k not in seen]

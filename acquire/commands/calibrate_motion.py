@@ -35,7 +35,7 @@ from typing import Sequence, TextIO
 
 import numpy as np
 
-from acquire.commands.calibrate import CalibrationRun, fit_warnings, holds_from_recording
+from acquire.commands.calibrate import CalibrationRun, fit_warnings
 from acquire.commands.common import (
     _adc_bits, _warn, check_recording_rig, filtered_intervals, recording_rate_hz, recording_rig,
 )
@@ -381,22 +381,9 @@ def _law(cal, segment: int, x: np.ndarray) -> np.ndarray:
 
 def _collect_holds(files, *, rig: Rig, table):
     """Holds, interval infos, provenance and notes of labelled recordings (as calibrate_files reads them)."""
-    holds, infos, recordings, notes = [], [], [], []
-    for f in files:
-        with open_recording(f, allow_live=False) as rec:
-            if rec.recovered:
-                notes.append(f"{rec.path}: was left unclosed by its recorder; recovered")
-            notes.extend(check_recording_rig(recording_rig(rec), rig, where=str(rec.path)))
-            n = rec.n_frames
-            rate, rate_notes = recording_rate_hz(rec, t_device_s=rec.file["raw"]["t_device_s"][: min(n, 100_000)])
-            bits, bit_notes = _adc_bits(rec)
-            notes.extend(rate_notes + bit_notes)
-            h, i = holds_from_recording(rec, rig=rig, table=table, rate_hz=rate, adc_bits=bits)
-            holds.extend(h)
-            infos.extend(i)
-            recordings.append({"path": str(f), "name": Path(f).name, "sha256": file_sha256(f), "frames": n,
-                               "holds": [x.label for x in i if x.used]})
-            check_distinct_recordings(recordings)
+    from acquire.commands.calibrate import collect_holds
+
+    holds, infos, recordings, notes = collect_holds(files, rig=rig, table=table)
     if files and not holds:
         raise UserError(f"{', '.join(map(str, files))}: no usable labelled holds (labels flat, radius=25mm, "
                         f"curvature=40/m); give motion sessions alone, or label the holds")
