@@ -415,34 +415,16 @@ def iter_processed(
         yield start, pipe._finish(chunk, resistance, f, pipe.memory.process(f, cal), check, cal)
 
 
-def process_arrays(
-    codes,
-    *,
-    rig: Rig,
-    calibration: Calibration | None,
-    rate_hz: float,
-    adc_bits: int,
-    spacing_m: float = 0.001,
-    method: str = "smooth",
-    zero_phase: bool = False,
-    chunk_frames: int = 65536,
-    mask_faults: bool = True,
-) -> Processed:
+def process_arrays(codes, **options) -> Processed:
     """All of :func:`iter_processed` joined into one :class:`Processed`.
 
-    Mind the memory of ``xy_m`` (8 * P bytes per frame); for long recordings
+    Keyword options as for :func:`iter_processed` (``rig``, ``calibration``,
+    ``rate_hz`` and ``adc_bits`` required). Mind the memory of ``xy_m`` (8 * P bytes per frame); for long recordings
     write chunk by chunk from :func:`iter_processed` instead.
     """
-    parts = [
-        p for _, p in iter_processed(
-            codes, rig=rig, calibration=calibration, rate_hz=rate_hz, adc_bits=adc_bits,
-            spacing_m=spacing_m, method=method, zero_phase=zero_phase,
-            chunk_frames=chunk_frames, mask_faults=mask_faults,
-        )
-    ]
-    if not parts:
-        return Pipeline(
-            rig=rig, calibration=calibration, rate_hz=rate_hz, adc_bits=adc_bits,
-            spacing_m=spacing_m, method=method, mask_faults=mask_faults,
-        ).process_codes(np.zeros((0, rig.n_channels), dtype=np.uint16))
+    parts = [p for _, p in iter_processed(codes, **options)]
+    if not parts:  # nothing to process: the empty result of the same pipeline
+        kept = ("rig", "calibration", "rate_hz", "adc_bits", "spacing_m", "method", "mask_faults")
+        pipe = Pipeline(**{k: options[k] for k in kept if k in options})
+        return pipe.process_codes(np.zeros((0, options["rig"].n_channels), dtype=np.uint16))
     return Processed.concat(parts)

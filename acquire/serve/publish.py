@@ -250,30 +250,9 @@ class ShapePublisher(Worker):
         self._prepare_formats()
 
     @classmethod
-    def from_address(
-        cls,
-        address: str,
-        *,
-        allow_remote: bool = False,
-        ring: FrameRing,
-        rig=None,
-        calibration=None,
-        rate_hz: float,
-        adc_bits: int = 12,
-        counters: Callable[[], dict] | None = None,
-        max_rate_hz: float | None = None,
-        client_buffer_bytes: int = 1 << 20,
-        socket_send_buffer_bytes: int | None = None,
-        max_clients: int = 32,
-        announce: bool = True,
-    ) -> "ShapePublisher":
-        """A publisher for ``HOST:PORT`` (parameters as for the class; nothing is bound yet)."""
-        return cls(
-            address=address, allow_remote=allow_remote, ring=ring, rig=rig, calibration=calibration,
-            rate_hz=rate_hz, adc_bits=adc_bits, counters=counters, max_rate_hz=max_rate_hz,
-            client_buffer_bytes=client_buffer_bytes, socket_send_buffer_bytes=socket_send_buffer_bytes,
-            max_clients=max_clients, announce=announce,
-        )
+    def from_address(cls, address: str, **options) -> "ShapePublisher":
+        """A publisher for ``HOST:PORT``; keyword options as for the class (nothing is bound yet)."""
+        return cls(address=address, **options)
 
     # -- control (caller's thread) ---------------------------------------------------------
     def start(self) -> None:

@@ -219,7 +219,7 @@ class VirtualFinger(Worker):
         os.set_blocking(self._wake_r, False)
         os.set_blocking(self._wake_w, False)
         self.start_thread()
-        if not self._ready.wait(10.0) or self.error is not None:
+        if not self._ready.wait(30.0) or self.error is not None:  # a hang limit, generous for a loaded machine
             error = self.error
             self.error = None
             self._cleanup(timeout_s=5.0)

@@ -30,7 +30,7 @@ import math
 
 import numpy as np
 
-from acquire.core.labels import parse_force_label, parse_hold_label
+from acquire.core.labels import check_label_text, parse_force_label, parse_hold_label
 from acquire.errors import UserError
 from acquire.rig import Rig, load_rig
 from acquire.virtual.elastica import (ElasticaSolution, arc_xy, bilinear, elastica_tables, simpson_mean,
@@ -64,8 +64,10 @@ _BEND_RANGE_RAD = (-5.0, 5.0)  # the moment grid, as M L / EI (0.1 rad steps): +
 def check_hold_label(label: str) -> tuple[str, float]:
     """What a hold label asks of the finger: ``("shape", curvature 1/m)`` or ``("force", N along +y)``.
 
-    Raises LabelError (a UserError) naming the label when it states neither. Pure.
+    Raises LabelError (a UserError) naming the label when it states neither, or when a
+    recording could not hold it (the one label check every command applies). Pure.
     """
+    check_label_text(label)
     force = parse_force_label(label)
     if force is not None:
         return "force", force

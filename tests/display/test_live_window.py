@@ -134,15 +134,7 @@ def test_labels_made_with_the_controls_land_in_the_recording(gui, qtbot, rig, ca
     assert i1 - i0 == seq[i1] - seq[i0] >= 500
 
 
-def _wait_for(cond, timeout_s, what):
-    deadline = time.monotonic() + timeout_s
-    while not cond():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out waiting for {what}")
-        time.sleep(0.02)
-
-
-def test_ctrl_c_leaves_a_complete_recording(tmp_path):
+def test_ctrl_c_leaves_a_complete_recording(tmp_path, wait_until):
     out = tmp_path / "interrupted.h5"
     env = dict(os.environ, QT_QPA_PLATFORM="offscreen", PYTHONPATH=str(REPO))
     proc = subprocess.Popen(
@@ -151,8 +143,8 @@ def test_ctrl_c_leaves_a_complete_recording(tmp_path):
     )
     try:
         lines = []
-        _wait_for(lambda: lines.append(proc.stderr.readline()) or "recording to" in lines[-1] or proc.poll() is not None,
-                  30, "the recording to start")
+        wait_until(lambda: lines.append(proc.stderr.readline()) or "recording to" in lines[-1] or proc.poll() is not None,
+                   timeout_s=30, what="the recording to start")
         assert proc.poll() is None, "".join(lines) + proc.stderr.read()
 
         def frames_on_disk() -> int:
@@ -162,7 +154,7 @@ def test_ctrl_c_leaves_a_complete_recording(tmp_path):
             except Exception:  # not there yet, or caught between two flushes of the writer
                 return 0
 
-        _wait_for(lambda: frames_on_disk() > 1000, 20, "1000 frames on disk")
+        wait_until(lambda: frames_on_disk() > 1000, timeout_s=20, what="1000 frames on disk")
         proc.send_signal(signal.SIGINT)
         code = proc.wait(timeout=30)
         err = proc.stderr.read()

@@ -155,15 +155,9 @@ def test_live_label(runs, text, rid, recordable, reference):
         assert not out.exists()
 
 
-_HOLD_MARKS = {
-    # a 200-byte shape label: the hold option takes it although no recording can hold it (reported)
-    "200-bytes": pytest.mark.xfail(strict=True, raises=AssertionError, reason="--hold does not apply the recording's label check"),
-}
-
-
 @pytest.mark.parametrize(
     "text, rid, recordable, reference",
-    [pytest.param(*row, id=row[1], marks=_HOLD_MARKS.get(row[1], ())) for row in ROWS],
+    [pytest.param(*row, id=row[1]) for row in ROWS],
 )
 def test_live_hold(runs, text, rid, recordable, reference):
     r = runs["results"]["hold", rid]

@@ -123,7 +123,7 @@ def test_csv_parses_with_the_csv_module(tmp_path, rig):
         write_marker_csv(path, model, t)
 
 
-def test_device_films_while_streaming(tmp_path):
+def test_device_films_while_streaming(tmp_path, wait_until):
     import serial
 
     path = tmp_path / "m.csv"
@@ -132,10 +132,9 @@ def test_device_films_while_streaming(tmp_path):
         try:
             port.write(b"START\n")
             port.flush()
-            deadline = 200
-            while dev.counters["camera_frames"] < 120 and deadline:
-                port.read(65536)
-                deadline -= 1
+            # keep reading so the device never stalls on a full pty
+            wait_until(lambda: port.read(65536) is not None and dev.counters["camera_frames"] >= 120,
+                       timeout_s=30, what="120 camera frames")
         finally:
             port.close()
     rows = list(csv.reader(open(path, newline="", encoding="utf-8")))

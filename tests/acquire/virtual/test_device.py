@@ -169,19 +169,21 @@ def test_stream_is_contiguous_and_matches_truth(device, host):
     assert host.dec.dropped == 0
 
 
-def test_set_hold_changes_the_finger(device, host):
+def test_set_hold_changes_the_finger(device, host, wait_until):
     # The jig's curvature (label grammar of the README's commands and calibration sections) shows up
     # in the truth of the frames made after the change.
     host.reply(b"START\n")
     host.frames(n=50)
     device.set_hold("curvature=40/m")
-    deadline = time.monotonic() + TIMEOUT_S
-    while True:
-        block = host.frames(n=20)
-        tr = device.truth_for(1, block.seq.astype(np.int64))
-        if abs(tr["curvature_per_m"][-1] - 40.0).max() < 0.05:
-            break
-        assert time.monotonic() < deadline, "hold never took effect"
+    seen = {}
+
+    def held() -> bool:
+        seen["block"] = host.frames(n=20)
+        seen["truth"] = device.truth_for(1, seen["block"].seq.astype(np.int64))
+        return abs(seen["truth"]["curvature_per_m"][-1] - 40.0).max() < 0.05
+
+    wait_until(held, timeout_s=TIMEOUT_S, what="the hold to take effect", poll_s=0.0)
+    block, tr = seen["block"], seen["truth"]
     np.testing.assert_array_equal(block.codes, tr["codes"])
     with pytest.raises(UserError):
         device.set_hold("radius=huge")
@@ -284,17 +286,16 @@ def test_drop_and_corrupt_rates(tmp_path):
     assert host.dec.dropped >= 0.5 * np.count_nonzero(fate[: rx.max()] == 1)
 
 
-def test_transmit_buffer_overflow_flags_next_packet():
+def test_transmit_buffer_overflow_flags_next_packet(wait_until):
     # firmware_protocol/PROTOCOL.md: whole packets that do not fit are dropped, the
     # next packet carries status bit 1, the gap in seq counts them.
     with VirtualFinger(rate_hz=20000, tx_buffer_bytes=1024) as dev:
         host = Host(dev.path)
         try:
             host.reply(b"START\n")
-            deadline = time.monotonic() + TIMEOUT_S
-            while dev.counters["frames_dropped_tx"] == 0:  # host not reading: the pty fills up
-                assert time.monotonic() < deadline, "transmit buffer never overflowed"
-                time.sleep(0.01)
+            # host not reading: the pty fills up
+            wait_until(lambda: dev.counters["frames_dropped_tx"] > 0, timeout_s=TIMEOUT_S,
+                       what="the transmit buffer to overflow")
             # read again: the first packet that finds room is flagged
             host.wait_for(lambda i: isinstance(i, fp.SampleBlock) and (i.status & fp.STATUS_TX_OVERFLOW).any())
             host.frames(n=2000)  # a steady reader: no more overflow
