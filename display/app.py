@@ -15,6 +15,7 @@ with the offscreen platform.
 """
 from __future__ import annotations
 
+import math
 import os
 import sys
 import time
@@ -175,11 +176,24 @@ def _tick(stop: StopSignals, started: float, duration_s: float | None) -> bool:
     return not stop.event.wait(wait)
 
 
+def _known_flat(session, was_flat: bool) -> bool:
+    """Tell the drift tracker when the sensor is known flat (a flat hold or an open flat label), as the window does."""
+    from acquire.core.drift_live import is_flat_label
+
+    vo = session.virtual_options
+    flat = (session.port is None and vo is not None and is_flat_label(vo.hold)) or is_flat_label(session.open_label)
+    if session.chain is not None and flat != was_flat:
+        (session.chain.drift.flat_from if flat else session.chain.drift.flat_until)(-math.inf if flat else math.nan)
+    return flat
+
+
 def _live_headless(session, *, stop: StopSignals, duration_s: float | None) -> None:
     # a failed recording is shown and acquisition goes on, as in the window
     tty = sys.stderr.isatty()
     started = time.monotonic()
+    flat = False
     while _tick(stop, started, duration_s):
+        flat = _known_flat(session, flat)
         line = status_line(session.status())
         if tty:
             sys.stderr.write("\r" + line[:200].ljust(120))

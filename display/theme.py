@@ -82,6 +82,12 @@ QHeaderView::section {{ background: {COLOURS['panel']}; color: {COLOURS['muted']
 QLabel#status {{ color: {COLOURS['text']}; }}
 QLabel#notice {{ color: {COLOURS['caution']}; }}
 QLabel#caution {{ color: {COLOURS['caution']}; font-size: 11px; }}
+QLabel#drift {{ color: {COLOURS['muted']}; padding: 2px 6px; border-radius: 3px; }}
+QLabel#drift[verdict="ok"] {{ background: {VERDICT_COLOURS['ok'][0]}; color: {VERDICT_COLOURS['ok'][1]}; }}
+QLabel#drift[verdict="warn"] {{ background: {VERDICT_COLOURS['warn'][0]}; color: {VERDICT_COLOURS['warn'][1]}; }}
+QLabel#drift[verdict="fault"] {{ background: {VERDICT_COLOURS['fault'][0]}; color: {VERDICT_COLOURS['fault'][1]}; }}
+QPushButton#tare[due="true"] {{ background: {VERDICT_COLOURS['warn'][0]}; border-color: {COLOURS['caution']};
+    color: {VERDICT_COLOURS['warn'][1]}; }}
 QLabel#panelTitle {{ color: {COLOURS['muted']}; font-weight: bold; }}
 QSplitter::handle {{ background: {COLOURS['panel_edge']}; }}
 QStatusBar {{ background: {COLOURS['panel']}; border-top: 1px solid {COLOURS['panel_edge']}; }}

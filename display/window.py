@@ -20,6 +20,7 @@ from acquire.errors import UserError
 from acquire.session.status import status_parts
 from acquire.core.reconstruct import body_outline
 
+from .drift_readout import DriftControls
 from .theme import COLOURS, STYLE_SHEET
 from .views import (RedrawGovernor, SegmentBars, ShapeView, Timeline, TraceView, force_arrow_scale_m_per_n,
                     redraw_ladder)
@@ -183,6 +184,9 @@ class SensorWindow(QtWidgets.QMainWindow):
             bar.addSeparator()
         self.tare_button = self._button("Tare", self.tare, tip="re-zero the calibration: hold the sensor flat first")
         bar.addWidget(self.tare_button)
+        self.drift_controls = DriftControls(source=self.source, live=self.live, tare_button=self.tare_button)
+        if self.drift_controls.button is not None:
+            bar.addWidget(self.drift_controls.button)
         self.cal_button = self._button("Calibration…", self._calibration_clicked, tip="load a calibration file")
         bar.addWidget(self.cal_button)
         bar.addSeparator()
@@ -299,6 +303,7 @@ class SensorWindow(QtWidgets.QMainWindow):
         status_row = QtWidgets.QHBoxLayout()
         status_row.addWidget(self.status_label, 3)
         status_row.addWidget(self.notice_label, 2)
+        status_row.addWidget(self.drift_controls.label, 0)
         self.notice_label.setVisible(False)
         outer.addLayout(status_row)
         outer.addWidget(self.caution_label)
@@ -418,6 +423,7 @@ class SensorWindow(QtWidgets.QMainWindow):
         st = self.source.status()
         if not self.live:
             st = dict(st, position_index=self.source.position_index)
+        st = dict(st, flat_drift=self.drift_controls.status_entry())
         parts = status_parts(st, latency_s=self.display_latency_s() if self.live else None)
         if self.governor.status():
             parts.append(self.governor.status())
@@ -427,6 +433,7 @@ class SensorWindow(QtWidgets.QMainWindow):
 
     def update_status(self) -> None:
         """Refresh the status line and controls; widgets are touched only where their text changed."""
+        self.drift_controls.refresh()
         _set_text(self.status_label, self.status_text())
         if self._notice_until and time.monotonic() > self._notice_until:
             self.notice_label.setText("")
@@ -500,9 +507,11 @@ class SensorWindow(QtWidgets.QMainWindow):
         try:
             if self.source.open_label:
                 text, t0, t1 = self.source.end_label()
+                self.drift_controls.label_ended(t1)
                 self.notice(f"label ‘{text}’: {t0:.3f} – {t1:.3f} s")
             else:
                 t0 = self.source.begin_label(self.label_edit.text())
+                self.drift_controls.label_started(self.label_edit.text(), t0)
                 self.notice(f"label ‘{self.label_edit.text().strip()}’ from {t0:.3f} s")
         except UserError as exc:
             self.notice(str(exc))

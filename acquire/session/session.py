@@ -531,6 +531,8 @@ class Session:
                 "calibration": None if self.calibration is None else str(self.calibration.source),
                 "reader_error": None if reader is None else reader.error,
                 "errors": self.errors(),
+                # the window replaces this with its own (it also knows its Held flat toggle)
+                "flat_drift": None if self.chain is None else self.chain.drift.readout().as_status(),
             }
         return out
 

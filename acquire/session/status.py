@@ -3,13 +3,17 @@
 :func:`status_parts` turns the dict of :meth:`acquire.session.Session.status`
 (or :meth:`acquire.sources.replay.ReplaySource.status`) into short phrases; the
 terminal joins them with `` | ``, the window with a middle dot. Pure; any thread.
+
+A ``flat_drift`` entry (:meth:`acquire.core.drift_live.DriftReadout.as_status`)
+adds how far the flat reading has moved since calibration, measured while
+the sensor is known to be flat, and whether a tare is due.
 """
 from __future__ import annotations
 
 import math
 from pathlib import Path
 
-__all__ = ["status_parts", "status_line", "fmt_bytes"]
+__all__ = ["status_parts", "status_line", "fmt_bytes", "drift_part"]
 
 
 def fmt_bytes(n: float) -> str:
@@ -56,11 +60,51 @@ def _replay_parts(st: dict) -> list[str]:
     return parts
 
 
+def _age(age_s: float) -> str:
+    if age_s < 90:
+        return f"{age_s:.0f} s"
+    if age_s < 5400:
+        return f"{age_s / 60:.0f} min"
+    return f"{age_s / 3600:.1f} h"
+
+
+def drift_part(d: dict | None) -> str | None:
+    """The flat-drift phrase of a status line, or None when there is nothing to say.
+
+    ``d``: :meth:`acquire.core.drift_live.DriftReadout.as_status`. Says the
+    worst segment's drift in % of r0 and the curvature it reads when flat
+    (1/m), then ``ok`` or ``TARE DUE``; its age once the sensor is no longer
+    held flat. Pure; any thread.
+    """
+    if not d or d.get("state") in (None, "no calibration", "unknown"):
+        return None
+    since = "since tare" if d.get("since_tare") else "since calibration"
+    if d["state"] == "measuring":
+        return "flat drift: measuring (keep the sensor flat)"
+    if not d.get("valid", False) or "segment" not in d:
+        return "flat drift: no valid flat reading in some segment"
+    if d.get("suspicious"):
+        text = (f"flat drift {d['drift_pct']:+.1f} % in segment {d['segment']}: more than drift, "
+                "CHECK THE STRIP (then calibrate again)")
+    else:
+        text = (f"flat drift {since} {d['drift_pct']:+.2f} % ({d['curvature_error_per_m']:+.3f} 1/m, "
+                f"segment {d['segment']}, limit {d['threshold_per_m']:.2f}): "
+                + ("TARE DUE" if d.get("needs_tare") else "ok"))
+    if d.get("settling"):
+        text += ", still settling"
+    if not d.get("flat_now"):
+        text += f" ({_age(d.get('age_s', 0.0))} ago)"
+    return text
+
+
 def status_parts(st: dict, *, latency_s: float | None = None) -> list[str]:
     """Short phrases for a status line; failures of any thread come last, in capitals."""
     parts = _live_parts(st, latency_s) if st.get("mode") == "live" else _replay_parts(st)
     cal = st.get("calibration")
     parts.append(f"calibration: {Path(cal).name if cal and '/' in str(cal) else (cal or 'none')}")
+    drift = drift_part(st.get("flat_drift"))
+    if drift:
+        parts.append(drift)
     for err in st.get("errors", ()):
         parts.append(f"FAILED: {err}")
     return parts

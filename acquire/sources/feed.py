@@ -330,6 +330,9 @@ class DisplayChain:
 
     Thread use: :meth:`process` on the producer thread; :meth:`set_calibration`
     and :meth:`tare` from any thread (take effect at the next block).
+    :attr:`drift` (:class:`acquire.core.drift_live.FlatDriftTracker`) keeps the
+    flat frames of the intervals declared on it; its declarations and
+    readout may be called from any thread.
     """
 
     def __init__(self, *, rig: Rig, calibration, rate_hz: float, adc_bits: int, window_s: float):
@@ -352,6 +355,9 @@ class DisplayChain:
         self._recent = deque()
         self._recent_n = 0
         self._recent_max = max(1, int(rate_hz))
+        from acquire.core.drift_live import FlatDriftTracker
+
+        self.drift = FlatDriftTracker(n_segments=rig.n_segments, rate_hz=rate_hz)
         if calibration is not None:
             self.set_calibration(calibration)
 
@@ -366,6 +372,7 @@ class DisplayChain:
             self._calibration = calibration
             self.calibration_notes = notes
         self.pipeline.set_calibration(calibration)  # memory and force follow it; takes effect at the next block
+        self.drift.set_calibration(calibration)
         return notes
 
     def process(self, block: FrameBlock) -> None:
@@ -381,6 +388,7 @@ class DisplayChain:
             force_n=out.force_n,
             actuation=out.actuation,
         )
+        self.drift.push(block.t_device_s, out.filtered_ohm, restarts=block.restarts)
         with self._lock:
             self._recent.append(out.filtered_ohm)
             self._recent_n += out.filtered_ohm.shape[0]
