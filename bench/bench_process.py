@@ -244,7 +244,7 @@ def main(argv=None) -> dict:
             stored = f["derived/xy"][:n_loop]  # points along the sensor (the file leaves out the fingertip)
             d_xy = float(np.max(np.abs(stored - xy[:, : stored.shape[1]])))
     # the same work: equal to float32 rounding (single-precision trig on the library side)
-    if d_curv > 1e-3 or d_xy > 5e-6:  # stored points keep 13 mantissa bits (acquire.store.recording.pack_xy)
+    if d_curv > 1e-3 or d_xy > 5e-6:  # stored points keep the 2^-17 m step of /derived/xy (acquire.store.recording.pack_xy)
         raise SystemExit(f"per-frame loop and process disagree: curvature {d_curv:g} 1/m, xy {d_xy:g} m")
     loop_per_frame = loop_s / n_loop
     result = {

@@ -6,7 +6,10 @@ written live, then reads each dataset's stored size from HDF5. "Before" is
 the layout of the first release: /raw uncompressed (37 bytes a frame for 6
 channels) and /derived uncompressed with shape points every millimetre
 (curvature 24 bytes + 97 points x 8 bytes). Target: a calibrated hour at
-1 kHz under 0.5 GB.
+1 kHz under 0.5 GB. Also printed: each dataset's stored bytes per frame, the
+file's overhead (what no dataset holds: mostly the earlier copies of the /raw
+chunks each 0.25 s flush rewrites, which a file written in SWMR mode does not
+reuse, and metadata), and the recorder thread's CPU (Linux: /proc).
 
 Run by hand: ``.venv/bin/python bench/bench_size.py`` (``--quick``: 4 s).
 """
@@ -14,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import tempfile
 import time
@@ -46,6 +50,26 @@ def _stored_bytes(f: h5py.File, group: str) -> int:
     return total
 
 
+def _per_dataset(f: h5py.File, n: int) -> dict[str, float]:
+    sizes = {}
+
+    def add(name, obj):
+        if isinstance(obj, h5py.Dataset) and obj.maxshape and obj.maxshape[0] is None:
+            sizes[name] = round(obj.id.get_storage_size() / n, 2)
+
+    f.visititems(add)
+    return {k: v for k, v in sorted(sizes.items()) if v >= 0.05}
+
+
+def _thread_cpu_s(native_id: int | None) -> float:
+    """CPU time (user + system, s) of one thread of this process, from /proc (Linux); NaN elsewhere."""
+    try:
+        fields = Path(f"/proc/self/task/{native_id}/stat").read_text().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError, TypeError):
+        return float("nan")
+
+
 def main(argv=None) -> dict:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--seconds", type=float, default=30.0)
@@ -59,8 +83,12 @@ def main(argv=None) -> dict:
         session = Session(rig=rig, calibration=cal, view=False, record_path=path,
                           virtual_options=VirtualOptions(rate_hz=1000.0))
         session.start()
+        thread = getattr(session.recorder, "_thread", None)
+        tid = getattr(thread, "native_id", None)
+        cpu0, wall0 = _thread_cpu_s(tid), time.monotonic()
         try:
             time.sleep(seconds)
+            recorder_cores = (_thread_cpu_s(tid) - cpu0) / (time.monotonic() - wall0)
         finally:
             session.stop_recording()
             session.stop()
@@ -68,14 +96,26 @@ def main(argv=None) -> dict:
             n = f["raw/adc"].shape[0]
             raw_b = _stored_bytes(f, "raw") / n
             derived_b = _stored_bytes(f, "derived") / n
+            all_b = _stored_bytes(f, "/") / n
             points = f["derived/s_m"].shape[0]
+            per_dataset = _per_dataset(f, n)
+            xy = f["derived/xy"]
+            filters = {"raw": f"{f['raw/adc'].compression} {f['raw/adc'].compression_opts}, shuffle",
+                       "derived": f"{xy.compression} {xy.compression_opts}, shuffle",
+                       "xy_step_m": float(xy.attrs.get("step_m", float("nan")))}
         file_b = path.stat().st_size / n
     result = {
         "frames": n,
         "shape_points": points,
+        "filters": filters,
         "raw_bytes_per_frame": round(raw_b, 1),
         "derived_bytes_per_frame": round(derived_b, 1),
+        "other_datasets_bytes_per_frame": round(all_b - raw_b - derived_b, 1),
+        "overhead_bytes_per_frame": round(file_b - all_b, 1),
         "file_bytes_per_frame": round(file_b, 1),
+        "per_dataset_bytes_per_frame": per_dataset,
+        "recorder_thread_cpu_cores": round(recorder_cores, 3),
+        "load_average": [round(v, 2) for v in os.getloadavg()],
         "hour_at_1khz_gb": round(file_b * 3.6e6 / 1e9, 3),
         "before_raw_bytes_per_frame": BEFORE_RAW_B,
         "before_derived_bytes_per_frame": BEFORE_DERIVED_B,

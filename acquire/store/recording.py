@@ -44,6 +44,9 @@ __all__ = [
     "create_derived",
     "DERIVED_OPTIONAL",
     "pack_xy",
+    "XY_STEP_M",
+    "COMPRESSION",
+    "DERIVED_COMPRESSION",
     "check_label_text",
     "software_version",
 ]
@@ -67,9 +70,13 @@ def _chunk_rows(row_bytes: int) -> int:
 
 
 #: compression of the large datasets: deflate (in every HDF5 build) after the byte shuffle, level 1
-#: (measured in bench/bench_size.py: shuffle halves the size of shape points again; higher levels
-#: gain a few per cent for several times the time)
+#: for /raw, which is rewritten at every flush (measured in bench/bench_size.py: shuffle halves the
+#: size of shape points again; higher levels gain a few per cent there for several times the time)
 COMPRESSION = dict(compression="gzip", compression_opts=1, shuffle=True)
+#: /derived is written in whole chunks only (acquire.store.recorder._WholeChunks), once each: level 4
+#: stores shape points in 14 % fewer bytes than level 1 for about 3 us more per frame (measured on the
+#: virtual finger's grasp, 49 points; levels 5-9 gain 3-6 % more for 1.5-4 times the time)
+DERIVED_COMPRESSION = dict(compression="gzip", compression_opts=4, shuffle=True)
 
 
 def _growing(
@@ -77,13 +84,14 @@ def _growing(
     compress: bool = False,
 ) -> h5py.Dataset:
     row_bytes = int(np.dtype(dtype).itemsize * int(np.prod(row_shape, dtype=np.int64)))
+    filters = (DERIVED_COMPRESSION if group.name == "/derived" else COMPRESSION) if compress else {}
     ds = group.create_dataset(
         name,
         shape=(0, *row_shape),
         maxshape=(None, *row_shape),
         dtype=dtype,
         chunks=(chunk_rows or _chunk_rows(row_bytes), *row_shape),
-        **(COMPRESSION if compress else {}),
+        **filters,
     )
     if units:
         ds.attrs["units"] = units
@@ -168,7 +176,7 @@ def create_derived(
     s.attrs["tap_index"] = tap_index  # s_m[tap_index[k]] is tap k; the last is the sensor's end
     xy = _growing(g, "xy", dtype=np.float32, row_shape=(n_points, 2), units="m", compress=True,
                   chunk_rows=max(256, (256 << 10) // (8 * n_points)))  # ~256 KiB: deflate works on long runs
-    xy.attrs["mantissa_bits"] = XY_MANTISSA_BITS
+    xy.attrs["step_m"] = XY_STEP_M  # every stored coordinate is a whole multiple of this
     if with_force:
         force = _growing(g, "force_n", dtype=np.float32, row_shape=(2,), units="N", compress=True)
         force.attrs["about"] = "estimated force at the sensor's far end, base frame (x, y), N"
@@ -183,22 +191,37 @@ def create_derived(
 DERIVED_OPTIONAL = ("force_n", "actuation")
 
 
-#: shape points keep this many of float32's 23 mantissa bits (relative precision 2^-14: under 4 um
-#: at 0.1 m, far inside the 0.05 mm the points are spaced for); the zeroed low bits compress
-XY_MANTISSA_BITS = 13
+#: shape points are rounded to whole multiples of this step, m (2^-17 m, about 7.6 um: each coordinate
+#: within 3.8 um, a point within 5.4 um, far inside the 0.05 mm the points are spaced for). A fixed
+#: absolute step, unlike a number of mantissa bits, leaves small coordinates (near the base) no finer
+#: than large ones: the zeroed low bits compress, 32 % fewer bytes than 13 mantissa bits with the same
+#: worst error at 0.06-0.12 m (measured on a bench/bench_size.py recording, deflate 1). A power of two
+#: keeps the rounding exact in float32 (only the exponent changes) for coordinates under 128 m.
+XY_STEP_M = 2.0 ** -17
 
 
 def pack_xy(xy_m: np.ndarray) -> np.ndarray:
-    """Shape points as stored: float32 rounded to :data:`XY_MANTISSA_BITS` mantissa bits (new array).
+    """Shape points as stored: float32 rounded to the nearest whole multiple of :data:`XY_STEP_M` (new array).
 
-    Round to nearest (a carry into the exponent is still the nearest value);
-    NaN and inf pass unchanged. Pure; any thread.
+    Parameters
+    ----------
+    xy_m : array_like
+        Shape points, m, any shape.
+
+    Returns
+    -------
+    numpy.ndarray
+        float32, same shape, owned by the caller; each finite value within
+        ``XY_STEP_M / 2`` of the input (ties to even); NaN and inf unchanged.
+
+    Pure; any thread.
     """
-    a = np.ascontiguousarray(xy_m, dtype=np.float32)
-    drop = 23 - XY_MANTISSA_BITS
-    u = a.view(np.uint32)
-    rounded = ((u + np.uint32(1 << (drop - 1))) & np.uint32((0xFFFFFFFF << drop) & 0xFFFFFFFF)).view(np.float32)
-    return np.where(np.isfinite(a), rounded, a)
+    a = np.array(xy_m, dtype=np.float32)  # a copy: scaling by a power of two, rounding, scaling back are exact
+    scale = np.float32(1.0 / XY_STEP_M)
+    a *= scale
+    np.rint(a, out=a)
+    a /= scale
+    return a
 
 
 @dataclass(frozen=True)

@@ -18,7 +18,7 @@ import pytest
 from acquire.core.pipeline import SHAPE_TOLERANCE_M, shape_spacing_m
 from acquire.core.reconstruct import Reconstructor
 from acquire.rig import load_rig
-from acquire.store.recording import XY_MANTISSA_BITS, open_recording, pack_xy
+from acquire.store.recording import XY_STEP_M, open_recording, pack_xy
 from acquire.virtual.builtin import builtin_calibration
 from acquire.virtual.model import FingerModel
 
@@ -76,10 +76,13 @@ def test_compact_points_at_the_largest_calibrated_curvature(rig, cal, edge):
 def test_packing_keeps_the_stated_precision():
     xy = np.random.default_rng(0).uniform(-0.12, 0.12, size=(1000, 40, 2)).astype(np.float32)
     packed = pack_xy(xy)
-    # relative error at most half a unit in the last kept bit (IEEE 754 rounding to nearest)
-    rel = np.abs(packed.astype(np.float64) - xy) / np.abs(xy)
-    assert rel.max() <= 2.0 ** -(XY_MANTISSA_BITS + 1) * 1.0001
+    # rounding to the nearest whole step: at most half a step off, and whole steps exactly (closed form)
+    assert np.abs(packed.astype(np.float64) - xy).max() <= XY_STEP_M / 2
+    steps = packed.astype(np.float64) / XY_STEP_M
+    assert np.array_equal(steps, np.round(steps))
     assert np.array_equal(pack_xy(packed), packed)  # idempotent
+    special = np.array([np.nan, np.inf, -np.inf], dtype=np.float32)
+    assert np.array_equal(pack_xy(special), special, equal_nan=True)
 
 
 def _tapcurve(*args, cwd=REPO):
