@@ -22,7 +22,7 @@ import time
 
 from acquire.errors import UserError
 from acquire.session.signals import StopSignals
-from acquire.session.status import status_line
+from acquire.session.status import drift_part, status_line
 
 __all__ = ["run_command", "display_available", "make_app", "exec_app", "live_session"]
 
@@ -259,13 +259,28 @@ def _replay_headless(src, *, stop: StopSignals, duration_s: float | None) -> Non
 # ----------------------------------------------------------------------------- health
 
 
+def _text_drift_monitor(session, rig, calibration, vo):
+    """The flat-drift monitor of ``health --text``: only with a calibration and the sensor held flat (``--hold flat``)."""
+    from acquire.core.drift_live import FlatDriftMonitor, is_flat_label
+
+    if calibration is None or vo is None or not is_flat_label(vo.hold):
+        return None
+    monitor = FlatDriftMonitor(cursor=session.cursor(), rig=rig, rate_hz=session.rate_hz,
+                               adc_bits=session.adc_bits, calibration=calibration)
+    monitor.tracker.flat_from(-math.inf)
+    return monitor
+
+
 def _health(args, stop: StopSignals) -> int:
     from acquire.core.health import HealthMonitor, format_health_table
     from acquire.rig import load_rig
     from acquire.session import Session
     from acquire.sources.virtual import virtual_options_from_args
 
+    from acquire.session import load_calibration_for
+
     rig = load_rig(args.rig)
+    calibration = load_calibration_for(args.calibration, rig)
     vo = virtual_options_from_args(args, rig) if args.port is None else None
     have_display, why = display_available()
     windowed = have_display and not args.text
@@ -278,7 +293,7 @@ def _health(args, stop: StopSignals) -> int:
         if windowed:
             from .health_view import HealthWindow
 
-            window = HealthWindow(session=session, window_s=args.window)
+            window = HealthWindow(session=session, window_s=args.window, calibration=calibration)
             window.show()
             exec_app(app, stop=stop, duration_s=args.duration)
             window.close()
@@ -286,11 +301,15 @@ def _health(args, stop: StopSignals) -> int:
             monitor = HealthMonitor(cursor=session.cursor(), rig=rig, adc_bits=session.adc_bits,
                                     rate_hz=session.rate_hz, counters=session.reader.all_counters,
                                     window_s=args.window)
+            drift = _text_drift_monitor(session, rig, calibration, vo)
             tty = sys.stdout.isatty()
             started = time.monotonic()
             while _tick(stop, started, args.duration):
                 monitor.update()
                 table = format_health_table(monitor.report())
+                if drift is not None:
+                    drift.update()
+                    table += "\n" + (drift_part(drift.tracker.readout().as_status()) or "flat drift: measuring")
                 if tty:
                     sys.stdout.write("\x1b[H\x1b[J")  # redraw in place
                 sys.stdout.write(table + "\n\n")

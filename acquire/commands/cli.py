@@ -152,6 +152,8 @@ def build_parser(*, simulator: bool = True) -> argparse.ArgumentParser:
     p.add_argument("--port", help="serial port; omit for the virtual finger")
     p.add_argument("--rig", help="rig file (TOML)")
     p.add_argument("--text", action="store_true", help="print the table in the terminal every second")
+    p.add_argument("--calibration", metavar="CAL.json",
+                   help="judge the flat reading's drift against this calibration while the sensor is held flat")
     p.add_argument("--duration", type=number_in("--duration", 0.0, MAX_DURATION_S, unit="s", lo_open=True), help="stop after S seconds")
     p.add_argument("--window", type=number_in("--window", 0.1, 60.0, unit="s"), default=2.0, metavar="S",
                    help="seconds of frames judged at each refresh (default 2)")

@@ -167,3 +167,25 @@ def test_replay_measures_the_recordings_flat_label(gui, qtbot, rig, calibration,
         w.close()
     finally:
         src.stop()
+
+
+def test_health_text_mode_judges_drift_against_a_given_calibration(calibration, tmp_path):
+    # The calibration's r0 moved by D: an ideal strip held flat reads a drift of about D (as in the
+    # window tests above), which is over the tare threshold (acquire/core/drift.py).
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    path = tmp_path / "moved.json"
+    moved(calibration, D).save(path)
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[2]))
+    r = subprocess.run([sys.executable, "-m", "display.cli", "health", "--text", "--duration", "4", "--strip", "ideal",
+                        "--hold", "flat", "--calibration", str(path)], env=env, capture_output=True, text=True,
+                       timeout=120)
+    assert r.returncode == 0, r.stderr
+    last = [t for t in r.stdout.split("\n\n") if t.strip()][-1]
+    line = next(x for x in last.splitlines() if x.startswith("flat drift"))
+    assert "TARE DUE" in line, line
+    pct = float(line.split("calibration")[1].split("%")[0])
+    assert abs(pct - 100 * D) < 1.0, line
