@@ -60,6 +60,7 @@ import numpy as np
 
 from acquire.core.drift import DriftReport, flat_drift
 from acquire.core.labels import LabelError, parse_label
+from acquire.core.verdicts import FAULT, OK, WARN
 
 __all__ = ["is_flat_label", "DriftReadout", "FlatDriftTracker", "FlatDriftMonitor", "drift_verdicts",
            "SETTLE_S", "WINDOW_S"]
@@ -69,7 +70,6 @@ SETTLE_S = 1.0
 #: judge this long of flat frames, s: the frames a tare would use (the last second)
 WINDOW_S = 1.0
 _KEEP_EXTRA_S = 0.5  # kept beyond the window, so that a late declared end still leaves a window
-_VERDICT_OK, _VERDICT_WARN, _VERDICT_FAULT = "ok", "warn", "fault"  # as acquire.core.health
 
 
 def is_flat_label(text) -> bool:
@@ -144,7 +144,7 @@ def drift_verdicts(report: DriftReport | None, *, n_segments: int) -> list[tuple
     strip, a loose tap). No report, or a segment without a valid flat
     reading: ``ok`` with an empty reason (the wiring rows judge that).
     """
-    out = [(_VERDICT_OK, "")] * n_segments
+    out = [(OK, "")] * n_segments
     if report is None:
         return out
     for s in report.segments:
@@ -155,11 +155,11 @@ def drift_verdicts(report: DriftReport | None, *, n_segments: int) -> list[tuple
         if s.suspicious:
             odd = (f"flat resistance {s.drift_pct:+.1f} % from the calibration's: more than drift "
                    "(other rig, damaged strip, loose tap?)")
-            out[s.segment] = (_VERDICT_FAULT, odd)
+            out[s.segment] = (FAULT, odd)
         elif s.needs_tare:
-            out[s.segment] = (_VERDICT_WARN, f"tare due: {what}{later}")
+            out[s.segment] = (WARN, f"tare due: {what}{later}")
         else:
-            out[s.segment] = (_VERDICT_OK, f"{what}{later}")
+            out[s.segment] = (OK, f"{what}{later}")
     return out
 
 

@@ -56,6 +56,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from acquire.link.frames import FrameBlock, RingCursor
+from acquire.core.verdicts import FAULT, OK, RANK, VERDICTS, WARN
 from acquire.rig import Rig
 
 try:  # Python 3.11+
@@ -82,15 +83,12 @@ __all__ = [
     "HealthMonitor",
 ]
 
-OK, WARN, FAULT = "ok", "warn", "fault"
-VERDICTS = (OK, WARN, FAULT)
-_RANK = {OK: 0, WARN: 1, FAULT: 2}
 DEFAULT_EXCITATION_V = 3.3
 _HUM_HZ = (50.0, 60.0)
 
 
 def _worst(verdicts) -> str:
-    return max(verdicts, key=_RANK.__getitem__, default=OK)
+    return max(verdicts, key=RANK.__getitem__, default=OK)
 
 
 @dataclass(frozen=True)
@@ -209,7 +207,7 @@ class HealthReport:
                 out.append((s.verdict, f"segment {s.index}", s.reason))
         if self.link is not None and self.link.verdict != OK:
             out.append((self.link.verdict, "link", self.link.reason))
-        out.sort(key=lambda r: -_RANK[r[0]])
+        out.sort(key=lambda r: -RANK[r[0]])
         return out
 
     def summary(self) -> str:

@@ -12,6 +12,8 @@ Threads: pure, any thread.
 """
 from __future__ import annotations
 
+from acquire.core.verdicts import FAULT, OK, WARN
+
 __all__ = ["judge_actuation_channel"]
 
 
@@ -30,8 +32,6 @@ def judge_actuation_channel(ch, *, actuation, at_zero: float, at_full: float, ot
         The ADC's full-scale code.
     thresholds : HealthThresholds
     """
-    from acquire.core.health import FAULT, OK, WARN
-
     th, unit = thresholds, actuation.unit
     what = f"actuation channel {ch.index} ({ch.name})"
 
