@@ -5,7 +5,8 @@ hold with a known force at the sensor's far end along +y of the base frame,
 at whatever actuation the recording shows. Each such hold's steady part
 (:func:`acquire.core.holds.steady_part` on the filtered resistances, as for
 jig holds) gives, through the curvature calibration fitted from the jig holds
-of the same run, its mean segment curvature and shape
+of the same run (and its strip-memory model when it keeps one, run over the
+whole recording as the live path runs it), its mean segment curvature and shape
 (:class:`acquire.core.reconstruct.Reconstructor`), and the rig's
 ``[actuation]`` channel its mean actuation: a
 :class:`acquire.core.force_fit.ForceHold`. :func:`acquire.core.force_fit.fit_force_model`
@@ -29,11 +30,13 @@ from typing import Sequence, TextIO
 import numpy as np
 
 from acquire.commands.common import (
-    MIN_STEADY_FRAMES, SPACING_M, _adc_bits, _warn, filtered_intervals, recording_rate_hz,
+    CHUNK_FRAMES, MIN_STEADY_FRAMES, SPACING_M, _adc_bits, _Rows, _warn, filtered_intervals, recording_rate_hz,
 )
 from acquire.core.calibration import CalibrationError, reference_for, steady_part
+from acquire.core.force import DEFAULT_AXIAL_FRICTION, DEFAULT_CURVATURE_NOISE_PER_M
 from acquire.core.force_fit import ForceCalibrationError, ForceFitReport, ForceHold, fit_force_model
 from acquire.core.labels import LabelError, parse_force_label
+from acquire.core.pipeline import Pipeline
 from acquire.core.reconstruct import Reconstructor
 from acquire.errors import UserError
 from acquire.rig import Rig
@@ -152,14 +155,44 @@ def check_force_labels(files: Sequence, *, rig: Rig, table: dict | None = None) 
     return n_force
 
 
-def _hold_from_frames(info, *, rig, calibration, recon, n_points, t, r, codes):
-    """A ForceHold from one interval's frames, or None (``info.note`` says why)."""
+def _static_intervals(rec: Recording, *, rig: Rig, calibration, rate_hz: float, adc_bits: int,
+                      intervals, chunk_frames: int = CHUNK_FRAMES) -> list[np.ndarray]:
+    """The static (memory-compensated) resistances of frame ranges, ohm, as the live path computes them.
+
+    The whole recording up to the last range runs through the live filters and
+    the calibration's strip-memory compensator (its state needs every frame
+    before a range), restarting at the recording's reconnect and reboot
+    events; only the frames inside ``intervals`` are kept (new arrays).
+    """
+    pipe = Pipeline(rig=rig, calibration=dataclasses.replace(calibration, force=None), rate_hz=rate_hz,
+                    adc_bits=adc_bits, with_shape=False)
+    out = [np.empty((max(0, b - a), rig.n_segments)) for a, b in intervals]
+    last = min(rec.n_frames, max((b for _, b in intervals), default=0))
+    codes = _Rows(rec.file["raw"]["adc"], last)
+    marks = np.asarray(sorted(set(int(r) for r in rec.restart_frames())), dtype=np.int64)
+    for start in range(0, last, chunk_frames):
+        chunk = np.asarray(codes[start:start + chunk_frames])
+        stop = start + chunk.shape[0]
+        p = pipe.process_codes(chunk, restarts=marks[(marks >= start) & (marks < stop)] - start)
+        for (a, b), dest in zip(intervals, out):
+            lo, hi = max(a, start), min(b, stop)
+            if hi > lo:
+                dest[lo - a:hi - a] = p.static_ohm[lo - start:hi - start]
+    return out
+
+
+def _hold_from_frames(info, *, rig, calibration, recon, n_points, t, r, codes, static=None):
+    """A ForceHold from one interval's frames, or None (``info.note`` says why).
+
+    ``r``: filtered resistances (they find the steady part); ``static``: the
+    memory-compensated ones the calibration reads when it has a memory model.
+    """
     mask = steady_part(t, r, info.t_start_s, info.t_end_s)
     info.steady_frames = int(mask.sum())
     if info.steady_frames < MIN_STEADY_FRAMES:
         info.note = f"only {info.steady_frames} steady frames; not used"
         return None
-    k, _ = calibration.evaluate(r[mask])
+    k, _ = calibration.evaluate((r if static is None else static)[mask])
     kappa = np.nanmean(k, axis=0)
     p = rig.actuation.value(codes[mask])
     info.actuation, info.actuation_std = float(np.mean(p)), float(np.std(p))
@@ -179,7 +212,8 @@ def force_holds_from_recording(rec: Recording, *, rig: Rig, calibration, rate_hz
     Parameters
     ----------
     calibration : Calibration
-        The curvature calibration (from the jig holds).
+        The curvature calibration (from the jig holds); with a strip-memory
+        model the holds are read through it, as the live path reads them.
     spacing_m : float
         Largest spacing of the shape points, m (the live path's default).
 
@@ -203,15 +237,19 @@ def force_holds_from_recording(rec: Recording, *, rig: Rig, calibration, rate_hz
     if not infos:
         return [], []
     res = filtered_intervals(rec, rig=rig, rate_hz=rate_hz, adc_bits=adc_bits, intervals=wanted)
+    static = [None] * len(wanted)
+    if calibration.memory_model is not None:
+        static = _static_intervals(rec, rig=rig, calibration=calibration, rate_hz=rate_hz, adc_bits=adc_bits,
+                                   intervals=wanted)
     recon = Reconstructor.from_rig(rig, spacing_m=spacing_m)
     n_points = int(recon.tap_index[-1]) + 1
     holds = []
-    for info, (a, b), r in zip(infos, wanted, res):
+    for info, (a, b), r, st in zip(infos, wanted, res, static):
         if b <= a:
             info.note = "no frames in the interval; not used"
             continue
         hold = _hold_from_frames(info, rig=rig, calibration=calibration, recon=recon, n_points=n_points,
-                                 t=t[a:b], r=r, codes=rec.file["raw"]["adc"][a:b])
+                                 t=t[a:b], r=r, codes=rec.file["raw"]["adc"][a:b], static=st)
         if hold is not None:
             holds.append(hold)
     return holds, infos
@@ -257,13 +295,11 @@ def fit_force_files(files: Sequence[str | os.PathLike], *, rig: Rig, calibration
     unit = rig.actuation.unit
     try:
         model, report = fit_force_model(holds, segment_lengths_m=rig.segment_lengths_m, degree=degree,
-                                        actuation_unit=unit)
+                                        actuation_unit=unit, **_loo_options(infos))
     except ForceCalibrationError as exc:
         raise UserError(f"{_names(files)}: cannot fit the force model: {exc}") from None
     for info, err in zip([i for i in infos if i.used], report.loo_force_error_n):
         info.loo_error_n = float(err)
-    if calibration.memory_model is not None:
-        notes.append("force holds read through the static calibration; the strip memory model is not applied")
     return ForceRun(model=model, report=report, infos=infos, unit=unit, notes=notes)
 
 
@@ -316,17 +352,23 @@ def calibrate_with_force(files: Sequence[str | os.PathLike], *, rig: Rig, table:
     return run
 
 
+def _loo_options(infos: list[ForceHoldInfo]) -> dict:
+    """The axial priors :func:`force_section` stores, for the held-out estimates."""
+    used = [abs(i.force_n) for i in infos if i.used]
+    return {"axial_prior_sigma_n": float(max(used)) if used and max(used) > 0 else 1.0,
+            "axial_friction": DEFAULT_AXIAL_FRICTION}
+
+
 def force_section(run: ForceRun) -> dict:
     """The calibration file's ``force`` section: the model and the estimator options the fit suggests.
 
     ``estimator.axial_prior_sigma_n``: the largest label force, N (the axial
     force is about zero, give or take the forces the finger was calibrated
-    with); ``estimator.curvature_noise_per_m``: each segment's fit residual,
-    at least the default noise. Read by the force stage where it supports them.
+    with); ``estimator.axial_friction``: the friction-cone prior (the axial
+    force within about this fraction of the normal force, :data:`DEFAULT_AXIAL_FRICTION`);
+    ``estimator.curvature_noise_per_m``: the largest segment fit residual, at
+    least the default noise, 1/m. The force stage reads them, so live, record,
+    replay and process estimate alike.
     """
-    from acquire.core.force import DEFAULT_CURVATURE_NOISE_PER_M
-
-    used = [abs(i.force_n) for i in run.infos if i.used]
-    noise = np.maximum(run.report.residual_rms_per_m, DEFAULT_CURVATURE_NOISE_PER_M)
-    return {**run.model.to_dict(), "estimator": {
-        "axial_prior_sigma_n": float(max(used)), "curvature_noise_per_m": [float(v) for v in noise]}}
+    noise = max(float(np.max(run.report.residual_rms_per_m)), DEFAULT_CURVATURE_NOISE_PER_M)
+    return {**run.model.to_dict(), "estimator": {**_loo_options(run.infos), "curvature_noise_per_m": noise}}

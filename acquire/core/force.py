@@ -32,12 +32,27 @@ The force is solved for in the contact frame: ``t`` the unit tangent of the
 curve at ``s_c`` (from the shape points), ``n`` = ``t`` turned +90 deg, and
 ``F = F_n n + F_a t``. The S segment equations (2 unknowns) are solved by
 weighted least squares (weight ``1 / sigma_k**2``, ``sigma_k`` the curvature
-noise, 1/m) with a Gaussian prior ``F_a ~ N(mu, sigma_a**2)`` on the axial
-component: the axial force's moment arms ``t x (r_c - r)`` vanish on a
-straight finger, so without the prior it is unobservable there. The 2 x 2
-normal equations are solved in closed form per frame (vectorised); their
-inverse gives the 1-sigma uncertainties, scaled up by the residual when the
-fit is worse than the stated noise (never down).
+noise, 1/m) with priors on the axial component: the axial force's moment
+arms ``t x (r_c - r)`` vanish on a straight finger, so without a prior it is
+unobservable there, and on a bent finger its moment profile is close to the
+normal force's, so curvature errors of a few hundredths of 1/m move it by
+tens of percent. Two Gaussian priors, both optional, combine:
+
+- a fixed one, ``F_a ~ N(mean, sigma**2)`` (``axial_prior_sigma_n``);
+- a friction cone (``axial_friction`` = mu): the axial force is taken to lie
+  within about mu times the normal force, ``F_a ~ N(0, mu**2 (F_n0**2 +
+  var_n0))`` with ``F_n0`` the normal component fitted with no axial part. A
+  stated assumption about the contact (Coulomb friction), not a measurement:
+  it pins the axial part at zero when nothing pushes, and lets the data move
+  it within the cone under load.
+
+The 2 x 2 normal equations are solved in closed form per frame, vectorised
+(:mod:`acquire.core.force_solve`); their inverse gives the 1-sigma
+uncertainties (given the priors), scaled up by the residual when the fit is
+worse than the stated noise (never down). With one contact point the
+quadrature weights, stiffness, noise weights and free-curvature
+coefficients are folded into one matrix at construction, so a block of
+frames costs one matrix product and a few dozen array operations.
 
 An unknown contact point may be estimated by scanning candidate arc lengths
 and keeping, per frame, the one with the smallest chi-square.
@@ -54,6 +69,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.interpolate import make_interp_spline
 
+from .force_solve import solve_one_contact, solve_stacked
+
 __all__ = [
     "ForceModel",
     "ForceResult",
@@ -62,6 +79,7 @@ __all__ = [
     "segment_moment_arms",
     "QUADRATURES",
     "DEFAULT_AXIAL_PRIOR_SIGMA_N",
+    "DEFAULT_AXIAL_FRICTION",
     "DEFAULT_CURVATURE_NOISE_PER_M",
 ]
 
@@ -69,6 +87,10 @@ QUADRATURES = ("cubic", "linear")
 # Order of the forces a soft finger exerts (0.1 to a few N): a prior that says
 # "about zero, give or take a newton" along the finger. Common practice, no source.
 DEFAULT_AXIAL_PRIOR_SIGMA_N = 1.0
+# Friction-cone prior a calibration stores: the axial force is within about half the normal force
+# (Coulomb friction of a silicone or rubber fingertip on everyday objects is of order 0.3 to 1).
+# Common practice, no source; an option, stated in the README.
+DEFAULT_AXIAL_FRICTION = 0.5
 # Order of a calibrated, low-passed resistive bend sensor's curvature noise per
 # frame. Common practice, no source; pass the rig's measured value.
 DEFAULT_CURVATURE_NOISE_PER_M = 0.1
@@ -332,34 +354,7 @@ class _Geometry:
         return out[..., :n_seg], out[..., n_seg:2 * n_seg], t
 
 
-# ----------------------------------------------------------------------------- solve
-
-
-def _solve(y, a, b, t, inv_ei, w, prior_prec, prior_mean, inflate):
-    """Closed-form weighted ridge least squares per frame: y, a, b (..., S), t (..., 2), w and inv_ei (S,)."""
-    tx, ty = t[..., :1], t[..., 1:]
-    jn = (tx * a + ty * b) * inv_ei  # n . (-B, A) / EI, n = (-ty, tx)
-    ja = (ty * a - tx * b) * inv_ei  # t . (-B, A) / EI
-    wn, wa = w * jn, w * ja
-    h11, h12 = (wn * jn).sum(-1), (wn * ja).sum(-1)
-    h22 = (wa * ja).sum(-1) + prior_prec
-    g1, g2 = (wn * y).sum(-1), (wa * y).sum(-1) + prior_prec * prior_mean
-    det = h11 * h22 - h12 * h12
-    with np.errstate(invalid="ignore", divide="ignore"):
-        fn = (h22 * g1 - h12 * g2) / det
-        fa = (h11 * g2 - h12 * g1) / det
-        r = y - jn * fn[..., None] - ja * fa[..., None]
-        chi2 = (w * r * r).sum(-1) + prior_prec * (fa - prior_mean) ** 2
-        var_n, var_a = h22 / det, h11 / det
-        dof = y.shape[-1] - (1 if prior_prec > 0 else 2)
-        if inflate and dof > 0:
-            scale = np.maximum(1.0, chi2 / dof)
-            var_n, var_a = var_n * scale, var_a * scale
-        out = [fn, fa, np.sqrt(var_n), np.sqrt(var_a), np.sqrt((r * r).mean(-1)), chi2]
-    bad = ~(det > 1e-12 * h11 * h22) | ~np.isfinite(chi2)
-    for arr in out:
-        arr[bad] = np.nan
-    return out
+# ----------------------------------------------------------------------------- estimator
 
 
 class ForceEstimator:
@@ -380,15 +375,24 @@ class ForceEstimator:
         Scan these contact points instead and keep, per frame, the one with the
         smallest chi-square (ties go to the most distal). Excludes ``contact_s_m``.
     axial_prior_sigma_n : float
-        Prior 1-sigma of the axial component, N (``inf``: no prior).
+        Prior 1-sigma of the axial component, N (``inf``: no fixed prior).
     axial_prior_mean_n : float
         Prior mean of the axial component, N.
+    axial_friction : float, optional
+        Friction-cone prior on the axial component: it is taken to be within
+        about this many times the normal component (Coulomb friction at the
+        contact, ``mu``; a stated assumption). Combines with the fixed prior.
+        None (default): no cone prior. See :mod:`acquire.core.force_solve`.
     curvature_noise_per_m : float or array_like, shape (S,)
         1-sigma noise of each segment's curvature per frame, 1/m.
     inflate_by_residual : bool
         Scale the uncertainties by ``sqrt(chi2 / dof)`` when that exceeds 1.
     quadrature : {"cubic", "linear"}
         Interpolation of the shape between its points for the moment arms.
+
+    With one contact point (known or the far end) every per-frame step is one
+    matrix product with weights fixed at construction, then a closed-form
+    2 x 2 solve: a few array operations per call whatever the frame count.
 
     Threads: immutable after construction; pure, any thread.
     """
@@ -402,6 +406,7 @@ class ForceEstimator:
         contact_candidates_m=None,
         axial_prior_sigma_n: float = DEFAULT_AXIAL_PRIOR_SIGMA_N,
         axial_prior_mean_n: float = 0.0,
+        axial_friction: float | None = None,
         curvature_noise_per_m=DEFAULT_CURVATURE_NOISE_PER_M,
         inflate_by_residual: bool = True,
         quadrature: str = "cubic",
@@ -410,6 +415,8 @@ class ForceEstimator:
             raise TypeError("model must be a ForceModel")
         if not axial_prior_sigma_n > 0:
             raise ValueError("axial_prior_sigma_n must be positive (inf for no prior), N")
+        if axial_friction is not None and not (math.isfinite(axial_friction) and axial_friction > 0):
+            raise ValueError("axial_friction must be a positive finite number (or None)")
         noise = np.broadcast_to(np.asarray(curvature_noise_per_m, dtype=np.float64), (model.n_segments,))
         if not np.all(np.isfinite(noise) & (noise > 0)):
             raise ValueError("curvature_noise_per_m must be positive and finite, 1/m")
@@ -417,13 +424,37 @@ class ForceEstimator:
         self._geom = _Geometry(model.segment_lengths_m, s_m, contact_s_m, contact_candidates_m, quadrature)
         self.s_m = self._geom.s
         self.contacts_m = self._geom.contacts_m
-        # frames per internal block: bounds the (block, C, S) temporaries to about 1 MB each
-        self._block = max(1, _BLOCK_VALUES // (self.contacts_m.size * model.n_segments))
-        self._w = 1.0 / noise**2
-        self._inv_ei = 1.0 / model.ei_n_m2
+        n_seg, n_pts, n_c = model.n_segments, self._geom.n_points, self.contacts_m.size
+        self._sw = 1.0 / noise  # sqrt of the weights
+        self._inv_sw = noise.copy()
+        self._scale_ab = self._sw / model.ei_n_m2  # a = sqrt(w) A / EI
         self._prior_prec = 0.0 if math.isinf(axial_prior_sigma_n) else 1.0 / axial_prior_sigma_n**2
         self._prior_mean = float(axial_prior_mean_n)
+        self._friction = None if axial_friction is None else float(axial_friction)
         self._inflate = bool(inflate_by_residual)
+        self._fast = self._fast_weights() if n_c == 1 else None
+        # frames per internal block: bounds the temporaries to about 1 MB each
+        width = (2 * n_pts + n_seg + model.degree) if n_c == 1 else n_c * n_seg * 3
+        self._block = max(1, _BLOCK_VALUES // width)
+
+    def _fast_weights(self) -> np.ndarray:
+        """(2P + S + D, 3S + 2): [xy, kappa, p**1..D] -> [Re e, Im e interleaved, y, dx/ds, dy/ds].
+
+        ``e_k = sqrt(w_k) (A_k - i B_k) / EI_k`` and ``y = sqrt(w) (kappa - sum_i c_i p**i)`` at the
+        one contact point (see :func:`acquire.core.force_solve.solve_one_contact`).
+        """
+        n_seg, n_pts, deg = self.model.n_segments, self._geom.n_points, self.model.degree
+        w = np.zeros((2 * n_pts + n_seg + deg, 3 * n_seg + 2))
+        arm = self._geom.weights  # (2P, 2S + 2): [A, B, dx, dy]
+        w[:2 * n_pts, 0:2 * n_seg:2] = arm[:, :n_seg] * self._scale_ab
+        w[:2 * n_pts, 1:2 * n_seg:2] = -arm[:, n_seg:2 * n_seg] * self._scale_ab
+        w[:2 * n_pts, 3 * n_seg:] = arm[:, 2 * n_seg:]
+        rows = 2 * n_pts + np.arange(n_seg)
+        w[rows, 2 * n_seg + np.arange(n_seg)] = self._sw
+        for i in range(deg):
+            w[2 * n_pts + n_seg + i, 2 * n_seg:3 * n_seg] = -self._sw * self.model.free_curvature_coeffs[:, i]
+        w.setflags(write=False)
+        return w
 
     @property
     def n_points(self) -> int:
@@ -440,7 +471,7 @@ class ForceEstimator:
         curvature_per_m : array_like, shape (N, S)
             Measured mean curvature of each segment, 1/m.
         xy_m : array_like, shape (N, P, 2)
-            Shape points at :attr:`s_m`, m, base frame.
+            Shape points at :attr:`s_m`, m, base frame (float32 or float64).
         actuation : float or array_like, shape (N,)
             Actuation p of each frame, in the model's unit.
 
@@ -454,30 +485,46 @@ class ForceEstimator:
         if kappa.ndim != 2 or kappa.shape[1] != s_count:
             raise ValueError(f"curvature_per_m: expected shape (N, {s_count}), got {kappa.shape}")
         n = kappa.shape[0]
-        xy = np.asarray(xy_m, dtype=np.float64)
+        xy = np.asarray(xy_m)
         if xy.shape != (n, self.n_points, 2):
             raise ValueError(f"xy_m: expected shape ({n}, {self.n_points}, 2), got {xy.shape}")
-        p = np.broadcast_to(np.asarray(actuation, dtype=np.float64), (n,))
-        y = kappa - self.model.free_curvature_per_m(p)
+        p = np.asarray(actuation, dtype=np.float64)
+        if p.shape != (n,):
+            p = np.broadcast_to(p, (n,))
+        solve = self._fast_solve if self._fast is not None else self._scan_solve
+        if n <= self._block:
+            return ForceResult(*solve(kappa, xy, p))
         parts = [np.empty((n, 2)), *(np.empty(n) for _ in range(5)), np.empty((n, 2)), np.empty(n)]
         for i in range(0, n, self._block):
-            for dst, src in zip(parts, self._block_solve(y[i:i + self._block], xy[i:i + self._block])):
-                dst[i:i + self._block] = src
+            j = i + self._block
+            for dst, src in zip(parts, solve(kappa[i:j], xy[i:j], p[i:j])):
+                dst[i:j] = src
         return ForceResult(*parts)
 
-    def _block_solve(self, y, xy):
-        a, b, t = self._geom.arms(xy)
-        fn, fa, sn, sa, rms, chi2 = _solve(y[:, None, :], a, b, t, self._inv_ei, self._w,
-                                           self._prior_prec, self._prior_mean, self._inflate)
-        if chi2.shape[1] == 1:
-            pick = np.zeros(chi2.shape[0], dtype=np.intp)
-            fn, fa, sn, sa, rms, t = fn[:, 0], fa[:, 0], sn[:, 0], sa[:, 0], rms[:, 0], t[:, 0]
-        else:  # per frame the candidate of least chi-square; first (most distal) on ties or all-NaN
-            pick = np.argmin(np.where(np.isnan(chi2), np.inf, chi2), axis=1)
-            rows = np.arange(pick.size)
-            fn, fa, sn, sa, rms, t = (v[rows, pick] for v in (fn, fa, sn, sa, rms, t))
-        force = fn[:, None] * np.stack([-t[:, 1], t[:, 0]], axis=1) + fa[:, None] * t
-        return force, fn, fa, sn, sa, rms, t, self.contacts_m[pick]
+    def _fast_solve(self, kappa, xy, p):
+        n, n_seg = kappa.shape
+        cols = [xy.reshape(n, -1), kappa, p[:, None]]
+        if self.model.degree == 2:
+            cols.append((p * p)[:, None])
+        out = np.concatenate(cols, axis=1, dtype=np.float64) @ self._fast  # (n, 3S + 2)
+        force, fn, fa, sn, sa, rms, t = solve_one_contact(
+            out, n_seg, self._inv_sw, prior_prec=self._prior_prec, prior_mean_n=self._prior_mean,
+            friction=self._friction, inflate=self._inflate)
+        return force, fn, fa, sn, sa, rms, t, np.full(n, self.contacts_m[0])
+
+    def _scan_solve(self, kappa, xy, p):
+        """Every candidate contact point, then per frame the one of least chi-square."""
+        a, b, t = self._geom.arms(np.asarray(xy, dtype=np.float64))  # (n, C, S), (n, C, 2)
+        y = (kappa - self.model.free_curvature_per_m(p)) * self._sw
+        z = np.stack([b * -self._scale_ab, a * self._scale_ab, np.broadcast_to(y[:, None, :], a.shape)], axis=2)
+        fx, fy, fn, fa, sn, sa, rms, chi2 = solve_stacked(
+            z, t[..., 0], t[..., 1], self._inv_sw, prior_prec=self._prior_prec, prior_mean_n=self._prior_mean,
+            friction=self._friction, inflate=self._inflate)
+        # per frame the candidate of least chi-square; first (most distal) on ties or all-NaN
+        pick = np.argmin(np.where(np.isnan(chi2), np.inf, chi2), axis=1)
+        rows = np.arange(pick.size)
+        fx, fy, fn, fa, sn, sa, rms, t = (v[rows, pick] for v in (fx, fy, fn, fa, sn, sa, rms, t))
+        return np.stack([fx, fy], axis=1), fn, fa, sn, sa, rms, t, self.contacts_m[pick]
 
 
 def estimate_force(model: ForceModel, curvature_per_m, xy_m, s_m, actuation, **options) -> ForceResult:

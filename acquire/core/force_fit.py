@@ -241,6 +241,7 @@ def fit_force_model(
     actuation_unit: str = "",
     quadrature: str = "cubic",
     axial_prior_sigma_n: float = DEFAULT_AXIAL_PRIOR_SIGMA_N,
+    axial_friction: float | None = None,
     curvature_noise_per_m=DEFAULT_CURVATURE_NOISE_PER_M,
     separation_warn: float = DEFAULT_SEPARATION_WARN,
 ) -> tuple[ForceModel, ForceFitReport]:
@@ -261,8 +262,9 @@ def fit_force_model(
         Label stored in the model.
     quadrature : {"cubic", "linear"}
         Shape interpolation for the moment arms (as in the estimator).
-    axial_prior_sigma_n, curvature_noise_per_m
-        Estimator options for the leave-one-out estimates.
+    axial_prior_sigma_n, axial_friction, curvature_noise_per_m
+        Estimator options for the leave-one-out estimates (pass those the
+        live path will use, so the held-out error is the one to expect).
     separation_warn : float
         Warn for a segment whose ``separation`` is below this.
 
@@ -292,7 +294,8 @@ def fit_force_model(
         "vary force and actuation independently)"
         for k in np.flatnonzero(sep < separation_warn)
     ]
-    options = {"axial_prior_sigma_n": axial_prior_sigma_n, "curvature_noise_per_m": curvature_noise_per_m}
+    options = {"axial_prior_sigma_n": axial_prior_sigma_n, "axial_friction": axial_friction,
+               "curvature_noise_per_m": curvature_noise_per_m}
     err, err_n, notes = _leave_one_out(holds, rows, lengths, degree, actuation_unit, quadrature, options)
     warnings.extend(notes)
     mags = np.hypot(rows.force[:, 0], rows.force[:, 1])

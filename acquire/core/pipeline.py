@@ -159,7 +159,9 @@ class Pipeline:
         self.adc_bits = int(adc_bits)
         self.mask_faults = bool(mask_faults)
         self.readout = make_readout(rig, adc_bits=adc_bits)
-        self.filters = FilterChain.from_rig(rig, rate_hz=rate_hz, n_signals=rig.n_segments)
+        # the actuation (if any) is filtered as one more column, so the force sees it with the curvature's delay
+        n_act = int(getattr(rig, "actuation", None) is not None)
+        self.filters = FilterChain.from_rig(rig, rate_hz=rate_hz, n_signals=rig.n_segments + n_act)
         self.reconstructor = Reconstructor.from_rig(rig, spacing_m=spacing_m, method=method)
         self.memory = MemoryStage(rate_hz=rate_hz)
         self.force = ForceStage(rig=rig, s_m=self.reconstructor.s_m,
@@ -251,12 +253,12 @@ class Pipeline:
             self.memory.reset()
         if not cuts:
             filtered = self.filters.process(x)
-            return filtered, self.memory.process(filtered, cal)
+            return filtered, self.memory.process(filtered[:, :self.n_segments], cal)
         f_parts, s_parts, start = [], [], 0
         for stop in [*cuts, x.shape[0]]:
             f = self.filters.process(x[start:stop])
             f_parts.append(f)
-            s_parts.append(self.memory.process(f, cal))
+            s_parts.append(self.memory.process(f[:, :self.n_segments], cal))
             if stop < x.shape[0]:
                 self.filters.reset()
                 self.memory.reset()
@@ -270,17 +272,21 @@ class Pipeline:
             raise ValueError(f"expected codes of shape (N, {self.rig.n_channels}), got {codes.shape}")
         resistance, check = self.readout.read(codes)
         to_filter = np.where(check.unusable, np.nan, resistance) if self.mask_faults else resistance
+        if self.force.actuation is not None:  # filtered with the resistances (see __init__)
+            to_filter = np.column_stack([to_filter, self.force.actuation_value(codes)])
         return resistance, check, to_filter
 
     def _finish(self, codes, resistance, filtered, static, check, cal) -> Processed:
         actuation = self.force.actuation_value(codes)
+        act_filtered = filtered[:, self.n_segments] if actuation is not None else None
+        filtered = np.ascontiguousarray(filtered[:, :self.n_segments])
         curvature = xy = outside = force = None
         if cal is not None:
             k, outside = cal.evaluate(filtered if static is None else static)
             curvature = k.astype(np.float32)
             need_shape = self.with_shape or cal.force_model is not None
             xy = self.reconstructor.shape_xy(k, dtype=np.float32) if need_shape else None
-            force = self.force.process(cal, k, xy, actuation)
+            force = self.force.process(cal, k, xy, act_filtered)
             if not self.with_shape:
                 xy = None
         return Processed(
@@ -412,7 +418,7 @@ def iter_processed(
         start = i * step
         f = filtered[start:start + resistance.shape[0]]
         chunk = np.asarray(codes[start:start + resistance.shape[0]])
-        yield start, pipe._finish(chunk, resistance, f, pipe.memory.process(f, cal), check, cal)
+        yield start, pipe._finish(chunk, resistance, f, pipe.memory.process(f[:, :pipe.n_segments], cal), check, cal)
 
 
 def process_arrays(codes, **options) -> Processed:

@@ -83,7 +83,8 @@ class ForceStage:
 
 
 #: estimator options a calibration's force section may carry (fitted with it), and their bounds
-_ESTIMATOR_BOUNDS = {"axial_prior_sigma_n": (1e-6, 1e4), "curvature_noise_per_m": (1e-6, 1e3)}
+_ESTIMATOR_BOUNDS = {"axial_prior_sigma_n": (1e-6, 1e4), "curvature_noise_per_m": (1e-6, 1e3),
+                     "axial_friction": (1e-3, 10.0)}
 
 
 def _estimator_options(d) -> dict:

@@ -232,11 +232,23 @@ def elastica_tables(
     segment_lengths_m: tuple, ei: float, phi: float, lever_m: float,
     moment_lo: float, moment_hi: float, n_moment: int, load_hi: float, n_load: int,
 ) -> ElasticaTables:
-    """Solve the grid once per parameter set (continuation in load)."""
+    """Solve the grid once per parameter set (continuation in load).
+
+    A moment range that spans zero must put a node on it (e.g. a symmetric
+    range and an odd ``n_moment``): the relaxed finger (no moment, no load)
+    then reads exactly straight instead of an interpolation between two bent
+    neighbours. Raises ValueError otherwise.
+    """
     seg = np.asarray(segment_lengths_m)
     length = float(seg.sum())
     s_m, tap_nodes = node_grid(seg)
     moment_grid = np.linspace(moment_lo, moment_hi, n_moment)
+    if moment_lo < 0.0 < moment_hi:
+        step = (moment_hi - moment_lo) / (n_moment - 1)
+        zero = -moment_lo / step
+        if abs(zero - round(zero)) > 1e-9:
+            raise ValueError(f"moment grid {moment_lo:g} .. {moment_hi:g} N m in {n_moment} nodes has no node at 0")
+        moment_grid[int(round(zero))] = 0.0  # exactly, not to rounding
     load_grid = np.linspace(0.0, load_hi, n_load)
     theta = np.empty((n_moment, n_load, s_m.shape[0]))
     kappa = np.empty_like(theta)

@@ -5,8 +5,10 @@ planar elastica with a uniform actuation moment and a tip force, the divider
 electrics, ADC noise) with the inputs scripted here, and written through the
 real recorder (FrameRing -> Recorder -> HDF5). The pressure channel reads
 the actuation moment (the model's own electrics); the rig's ``[actuation]``
-turns it into kPa. The reference is the finger's ground truth: the force it
-was given (an outside model in the sense that the host side only sees codes).
+turns it into kPa. The errors are measured against the force the finger was
+given. The virtual finger is not an outside reference: these are figures
+against project targets, not proofs (the rod model itself is checked against
+closed forms and scipy in tests/acquire/core/test_force.py).
 
 Figures (printed, ``pytest -s``): held-out force error of the calibration,
 and on a 40 s grasp the mean absolute force error in % of the largest force
@@ -241,6 +243,49 @@ def test_jig_holds_only_give_no_force_model(tmp_path, rig, rig_files):
     assert "force" not in json.loads((tmp_path / "c.json").read_text())
 
 
+def test_force_holds_read_through_the_memory_model(calibrated, holds_file, rig):
+    # A calibration with a strip-memory model: the force holds must be read as the live path reads
+    # them (filters, then the memory compensator over the whole stream, then the calibration), not
+    # through the static law. The reference is the live Pipeline itself over the whole recording
+    # (the one definition of the live path; no outside source).
+    import dataclasses
+
+    from acquire.commands.calibrate_force import force_holds_from_recording
+    from acquire.core.calibration import Calibration, steady_part
+    from acquire.core.memory import SegmentMemory, StripMemory
+    from acquire.core.pipeline import Pipeline
+    from acquire.store.recording import open_recording
+
+    static = Calibration.load(calibrated[0])
+    static = dataclasses.replace(static, force=None)
+    creep = StripMemory([SegmentMemory(creep_gains=[0.3], creep_taus_s=[0.5])] * rig.n_segments)  # made up, large
+    with_memory = dataclasses.replace(static, memory=creep.to_dict())
+    with open_recording(holds_file, allow_live=False) as rec:
+        codes = rec.file["raw"]["adc"][: rec.n_frames]
+        t = rec.file["raw"]["t_device_s"][: rec.n_frames]
+        read = {}
+        for name, cal in (("static", static), ("memory", with_memory)):
+            holds, infos = force_holds_from_recording(rec, rig=rig, calibration=cal, rate_hz=RATE_HZ, adc_bits=BITS)
+            read[name] = np.array([h.curvature_per_m for h in holds])
+    live = Pipeline(rig=rig, calibration=with_memory, rate_hz=RATE_HZ, adc_bits=BITS, with_shape=False)
+    k_live = live.process_codes(codes).curvature_per_m.astype(np.float64)
+    used = [i for i in infos if i.used]
+    assert len(used) == read["memory"].shape[0] == 9
+    # over each hold's steady part (the one definition of a hold, acquire.core.holds.steady_part, on the
+    # filtered resistances), the live path's mean curvature
+    ref = []
+    filtered = Pipeline(rig=rig, calibration=None, rate_hz=RATE_HZ, adc_bits=BITS).process_codes(codes).filtered_ohm
+    for i in used:
+        inside = np.flatnonzero((t >= i.t_start_s) & (t <= i.t_end_s))
+        a, b = inside[0], inside[-1] + 1
+        mask = steady_part(t[a:b], filtered[a:b], i.t_start_s, i.t_end_s)
+        ref.append(np.mean(k_live[a:b][mask], axis=0))
+    err_memory = np.abs(read["memory"] - np.array(ref)).max()
+    err_static = np.abs(read["static"] - np.array(ref)).max()
+    print(f"\nhold curvature vs the live path: through the memory model {err_memory:.2g} 1/m, static {err_static:.2g} 1/m")
+    assert err_memory < 1e-6 and err_static > 0.05
+
+
 # ----------------------------------------------------------------------------- end to end
 
 
@@ -250,14 +295,27 @@ def _errors(est: np.ndarray, truth: np.ndarray, tangent: np.ndarray) -> dict:
     t = tangent / np.hypot(tangent[:, 0], tangent[:, 1])[:, None]
     n = np.stack([-t[:, 1], t[:, 0]], axis=1)
     peak = float(np.max(np.hypot(truth[:, 0], truth[:, 1])))
+    axial = np.abs((err * t).sum(1))
     return {
         "peak_n": peak,
         "mean_pct": 100 * float(np.mean(mag)) / peak,
         "p95_pct": 100 * float(np.percentile(mag, 95)) / peak,
         "normal_mean_pct": 100 * float(np.mean(np.abs((err * n).sum(1)))) / peak,
-        "axial_mean_pct": 100 * float(np.mean(np.abs((err * t).sum(1)))) / peak,
+        "normal_p95_pct": 100 * float(np.percentile(np.abs((err * n).sum(1)), 95)) / peak,
+        "axial_mean_pct": 100 * float(np.mean(axial)) / peak,
+        "axial_p95_pct": 100 * float(np.percentile(axial, 95)) / peak,
         "axial_share": float(np.sum(np.abs((truth * t).sum(1))) / np.sum(np.hypot(truth[:, 0], truth[:, 1]))),
     }
+
+
+def _filtered_actuation(act, rig, *, zero_phase: bool):
+    """The actuation through the same filters as the resistances (what the force stage is given)."""
+    from acquire.core.filters import FilterChain, filtfilt_zero_phase
+
+    if zero_phase:
+        return filtfilt_zero_phase(act[:, None], rate_hz=RATE_HZ, cutoff_hz=rig.lowpass_hz, order=rig.lowpass_order,
+                                   spike_window=rig.spike_window)[:, 0]
+    return FilterChain.from_rig(rig, rate_hz=RATE_HZ, n_signals=1).process(act[:, None])[:, 0]
 
 
 def test_grasp_force_end_to_end(tmp_path, rig, calibrated):
@@ -265,6 +323,9 @@ def test_grasp_force_end_to_end(tmp_path, rig, calibrated):
 
     cal, _ = calibrated
     section = json.loads(cal.read_text())["force"]
+    # the calibration states the axial constraint it was fitted with: a friction cone and a fixed prior
+    assert section["estimator"]["axial_friction"] == pytest.approx(0.5)
+    assert section["estimator"]["axial_prior_sigma_n"] == pytest.approx(max(FORCES_N))
     model = grasp_model(rig)
     path = tmp_path / "grasp.h5"
     write_recording(path, rig, [(None, model, 40.0)])
@@ -286,18 +347,21 @@ def test_grasp_force_end_to_end(tmp_path, rig, calibrated):
         ok = np.isfinite(est).all(axis=1)
         assert ok.mean() > 0.999
         rows[name] = _errors(est[ok], truth[ok], tangent[ok])
-        # with the estimator options the calibration stores (axial prior, curvature noise)
-        tuned = ForceEstimator(ForceModel.from_dict(section), s_m, **section["estimator"]).process(k, xy, act)
-        rows[name + ", stored options"] = _errors(tuned.force_n[ok], truth[ok], tangent[ok])
+        # the same frames with the fixed axial prior only (no friction cone): what the cone brings
+        options = {key: v for key, v in section["estimator"].items() if key != "axial_friction"}
+        plain = ForceEstimator(ForceModel.from_dict(section), s_m, **options).process(
+            k, xy, _filtered_actuation(act, rig, zero_phase=bool(extra)))
+        rows[name + ", fixed prior only"] = _errors(plain.force_n[ok], truth[ok], tangent[ok])
         # the actuation read back is the pressure the finger was given, to the ADC's step and noise
         np.testing.assert_allclose(act, model._p(t), atol=0.5)
     print(f"\ngrasp 40 s, largest force {rows['causal']['peak_n']:.3f} N (axial part of the true force: "
           f"{100 * rows['causal']['axial_share']:.0f} % of its magnitude on average); errors in % of the largest:")
-    print(" filters                     mean |dF|  p95 |dF|  normal mean  axial mean")
+    print(" filters                        mean |dF|  p95 |dF|  normal mean  normal p95  axial mean  axial p95")
     for name, r in rows.items():
-        print(f" {name:26s} {r['mean_pct']:9.2f}  {r['p95_pct']:8.2f}  {r['normal_mean_pct']:11.2f}  "
-              f"{r['axial_mean_pct']:10.2f}")
-    # the normal component is what the bend shows directly: within the 5 % target as the live path runs
+        print(f" {name:29s} {r['mean_pct']:9.2f}  {r['p95_pct']:8.2f}  {r['normal_mean_pct']:11.2f}  "
+              f"{r['normal_p95_pct']:10.2f}  {r['axial_mean_pct']:10.2f}  {r['axial_p95_pct']:9.2f}")
+    # the requirement: mean absolute force error <= 5 % of the largest force, as the live path runs and offline
+    assert rows["causal"]["mean_pct"] <= 5.0 and rows["zero-phase"]["mean_pct"] <= 5.0
     assert rows["causal"]["normal_mean_pct"] <= 5.0
-    # the axial component rests on the prior near straight: usable only with the stored options
-    assert rows["zero-phase, stored options"]["mean_pct"] <= 10.0
+    # the friction cone is what brings the axial part down (the fixed prior alone left it at 4 .. 5 %)
+    assert rows["causal"]["axial_mean_pct"] < rows["causal, fixed prior only"]["axial_mean_pct"]

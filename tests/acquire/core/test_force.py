@@ -264,6 +264,91 @@ def test_axial_component_weakly_observable_on_a_straight_finger():
     assert bent.sigma_axial_n[0] < 0.1
 
 
+# ----------------------------------------------------------------------------- priors against LAPACK
+
+
+def _lstsq_reference(kappa, xy, s, model, *, noise, friction=None, prior_sigma=np.inf):
+    """The same estimate frame by frame with numpy.linalg.lstsq (LAPACK) on the augmented system.
+
+    Rows: the S curvature equations scaled by 1/noise; the axial prior as one more row
+    sqrt(prec) t . F (both priors have mean 0 here). The friction cone's precision comes from a first lstsq of the
+    normal component alone, as documented in acquire.core.force_solve.
+    """
+    a, b, t = segment_moment_arms(xy, s, segment_lengths_m=model.segment_lengths_m)
+    out = []
+    for j in range(kappa.shape[0]):
+        design = np.column_stack([-b[j], a[j]]) / model.ei_n_m2[:, None] / noise
+        y = kappa[j] / noise
+        n_vec = np.array([-t[j, 1], t[j, 0]])
+        prec = 0.0 if np.isinf(prior_sigma) else 1.0 / prior_sigma**2
+        if friction is not None:
+            col = design @ n_vec
+            (fn0,), *_ = np.linalg.lstsq(col[:, None], y, rcond=None)
+            var_n0 = 1.0 / (col @ col)
+            prec = prec + 1.0 / (friction**2 * (fn0**2 + var_n0))
+        if prec > 0:
+            design = np.vstack([design, np.sqrt(prec) * t[j]])
+            y = np.append(y, 0.0)
+        f, *_ = np.linalg.lstsq(design, y, rcond=None)
+        out.append(f)
+    return np.array(out)
+
+
+@pytest.mark.parametrize("options", [
+    {"axial_prior_sigma_n": np.inf},
+    {"axial_prior_sigma_n": 0.3},
+    {"axial_prior_sigma_n": np.inf, "axial_friction": 0.5},
+    {"axial_prior_sigma_n": 0.2, "axial_friction": 0.5},
+])
+def test_solve_matches_lapack_lstsq(elastica, options):
+    # Weighted least squares with a Gaussian prior is ordinary least squares on the system
+    # augmented by one row per prior (any regression text, e.g. Press et al., Numerical Recipes,
+    # ch. 15); numpy.linalg.lstsq (LAPACK gelsd) solves that independently of our closed forms.
+    rng = np.random.default_rng(4)
+    frames = [bvp_frame(elastica[a]) for a in (1.0, 2.0, 5.0)]
+    s = frames[0][0]
+    idx = rng.integers(0, 3, size=12)
+    kappa = np.stack([frames[i][2] for i in idx]) + rng.normal(0, 0.1, (12, 6))
+    xy = np.stack([frames[i][1] for i in idx])
+    est = ForceEstimator(uniform_model(), s, curvature_noise_per_m=0.1, **options)
+    got = est.process(kappa, xy, 0.0)
+    ref = _lstsq_reference(kappa, xy, s, uniform_model(), noise=0.1,
+                           friction=options.get("axial_friction"), prior_sigma=options["axial_prior_sigma_n"])
+    np.testing.assert_allclose(got.force_n, ref, rtol=1e-9, atol=1e-12)
+    # the candidate scan's solver (real arithmetic) agrees with the one-contact path (complex arithmetic)
+    scan = ForceEstimator(uniform_model(), s, curvature_noise_per_m=0.1, contact_candidates_m=[LEN], **options)
+    scan._fast = None  # force the general path
+    other = scan.process(kappa, xy, 0.0)
+    for name in ("force_n", "normal_n", "axial_n", "sigma_normal_n", "sigma_axial_n", "residual_per_m", "tangent"):
+        np.testing.assert_allclose(getattr(other, name), getattr(got, name), rtol=1e-10, atol=1e-13)
+
+
+def test_friction_cone_pins_the_axial_part_at_rest_and_frees_it_under_load(elastica):
+    # At rest (no force) on a bent finger, noise alone moves the axial estimate; the friction cone
+    # holds it near zero. Under load the cone allows about mu times the normal force.
+    s, xy, kappa, _ = bvp_frame(elastica[2.0])
+    rng = np.random.default_rng(5)
+    n = 2000
+    xy_n = np.broadcast_to(xy, (n,) + xy.shape)
+    # the bent shape with the load's curvature removed again: a finger bent by actuation alone
+    free = ForceModel(L6, np.full(6, EI), kappa[:, None] / 30.0)
+    rest = np.broadcast_to(kappa, (n, 6)) + rng.normal(0, 0.1, (n, 6))
+    plain = ForceEstimator(free, s, axial_prior_sigma_n=0.3).process(rest, xy_n, 30.0)
+    cone = ForceEstimator(free, s, axial_prior_sigma_n=0.3, axial_friction=0.5).process(rest, xy_n, 30.0)
+    assert np.mean(np.abs(cone.axial_n)) < 0.5 * np.mean(np.abs(plain.axial_n))
+    assert np.mean(np.abs(cone.normal_n)) <= np.mean(np.abs(plain.normal_n)) * 1.05
+    # exact curvatures of the loaded cantilever (alpha 2): the true force is partly axial; with a wide
+    # cone (mu 5) the estimate is within 1 % of it, with mu 0.5 the axial part is held to the cone
+    alpha_force = np.array([0.0, 2.0 * EI / LEN**2])
+    wide = estimate_force(uniform_model(), kappa[None], xy[None], s, 0.0, axial_prior_sigma_n=np.inf,
+                          axial_friction=5.0)
+    assert np.hypot(*(wide.force_n[0] - alpha_force)) < 0.01 * np.hypot(*alpha_force)
+    tight = estimate_force(uniform_model(), kappa[None], xy[None], s, 0.0, axial_prior_sigma_n=np.inf,
+                           axial_friction=0.5)
+    assert abs(tight.axial_n[0]) < abs(wide.axial_n[0])
+    assert tight.sigma_axial_n[0] < wide.sigma_axial_n[0]
+
+
 # ----------------------------------------------------------------------------- stream behaviour
 
 
