@@ -17,23 +17,28 @@ say nothing about hysteresis.
 *From motion sessions* (:class:`MotionSeries`: filtered resistance and a
 reference curvature per frame, e.g. from filmed markers): the reference is
 mapped back through the static law (:func:`invert_static_law`) to the static
-signal ``u``; :func:`acquire.core.memory_fit.fit_memory` identifies hysteresis
-and creep from (u, x). Creep the motion cannot identify comes from the holds.
+signal ``u``. Creep comes from the holds where they identified it, else from
+the motion (:func:`acquire.core.memory_fit.fit_memory`). The hysteresis is
+fitted as the compensator, from the reading with the creep taken out to ``u``
+(:mod:`acquire.core.memory_invfit`): a film's noise is on ``u``, the side
+least squares averages. The reference is first moved in time by the lag that
+fits best (a film aligned on a creeping reading is tens of ms late, which a
+fit would take for hysteresis).
 
 *Static law again*: the static law was fitted to hold means that still
 contained creep (and the loading branch of the hysteresis); it is fitted
 again to the holds with the memory taken out, so that law and memory agree.
-With motion this alternates twice (memory from the law, law from the memory).
+With motion this alternates (memory from the law, law from the memory).
 
 What it is worth
 ----------------
 Per segment, the curvature error of the static calibration and of the
 calibration with memory on data the fit did not see: the last 25 % of the
-motion, or each hold predicted by a creep fit without it (leave-one-hold-out).
-Memory is kept only in segments where it cuts that error by at least 5 %
-(the margin :func:`acquire.commands.calibrate.choose_degree` asks of a higher
-degree), so an ideal strip keeps its static calibration. ``--static`` skips
-all of this.
+motion (against the reference smoothed in time), or each hold predicted by a
+creep fit without it (leave-one-hold-out). Memory is kept where it cuts that
+error, RMS over all segments of the strip, by at least 5 % (the margin
+:func:`acquire.commands.calibrate.choose_degree` asks of a higher degree), so
+an ideal strip keeps its static calibration. ``--static`` skips all of this.
 
 Threads: the calling (main) thread. Returned objects are new.
 """
@@ -48,8 +53,10 @@ import numpy as np
 
 from acquire.commands.common import MIN_STEADY_FRAMES, _adc_bits, filtered_intervals, recording_rate_hz
 from acquire.core.calibration import Calibration, CalibrationError, FitReport, Hold, fit_calibration, steady_part
-from acquire.core.memory import Relaxation, SegmentMemory, StripMemory
-from acquire.core.memory_fit import CreepStepsFit, HoldStep, fit_creep_steps, fit_memory
+from acquire.core.memory import SegmentMemory, StripMemory
+from acquire.core.memory_fit import CreepStepsFit, HoldStep, fit_creep_steps, fit_memory, hysteresis_band
+from acquire.core.memory_invfit import (best_lag, creep_terms, decimate, fill_gaps, fit_hysteresis, invert_static_law,
+                                        shift_reference, smooth_in_time)
 from acquire.errors import UserError
 from acquire.rig import Rig
 from acquire.store.recording import open_recording
@@ -74,6 +81,14 @@ _MAX_GAP_S = 10.0  # holds further apart than this are not one chain of steps
 _MAX_ROUNDS = 12  # law from memory, memory from law: at most this many rounds with motion
 _BAND_SETTLED = 0.005  # ... stopping when no segment's hysteresis band moves by more than this fraction
 _FIT_RATE_HZ = 100.0  # motion is fitted at about this frame rate
+#: lags of the reference searched, s: a film aligned on a creeping reading is late by tens of ms
+#: (the virtual finger's: about 40 ms); the search refines between grid points
+#: held-out errors are scored against the reference smoothed in time (Gaussian sigma, s): a film's
+#: frame noise (independent per camera frame, about 2 1/m RMS on the virtual camera) would hide the
+#: differences the score has to show; this smoothing moves a free motion by under 0.1 1/m (measured
+#: on the virtual finger's truth at 60 frames/s)
+_SCORE_SMOOTH_S = 0.03
+_LAGS_S = (-0.04, -0.02, 0.0, 0.02, 0.04, 0.06, 0.08, 0.1)
 
 
 @dataclass(frozen=True)
@@ -186,33 +201,6 @@ class MemoryResult:
 # ----------------------------------------------------------------------------- pieces
 
 
-def invert_static_law(calibration: Calibration, curvature_per_m, *, n_grid: int = 4001) -> np.ndarray:
-    """Relative resistance change ``x`` (N, S) the static law maps to ``curvature_per_m`` (N, S).
-
-    The law is monotone increasing (checked when fitted) and continues as a
-    straight line beyond the fitted range, so the inverse is a table
-    interpolation inside a wide grid and the edge slopes beyond it. NaN stays NaN.
-    """
-    k = np.asarray(curvature_per_m, dtype=float)
-    out = np.full(k.shape, np.nan)
-    for s in range(calibration.n_segments):
-        lo, hi = float(calibration.x_min[s]), float(calibration.x_max[s])
-        pad = max(hi - lo, 1e-6)
-        # the law's kinks (flat, the fitted edges) are grid points: exact there, not interpolated across
-        xg = np.union1d(np.linspace(max(lo - pad, -0.99), hi + pad, n_grid), [lo, 0.0, hi])
-        col = np.zeros((xg.size, calibration.n_segments))
-        col[:, s] = xg
-        kg = calibration.curvature_per_m(calibration.r0_ohm * (1.0 + col))[:, s]
-        inside = np.interp(k[:, s], kg, xg)
-        slope_lo = (xg[1] - xg[0]) / (kg[1] - kg[0])
-        slope_hi = (xg[-1] - xg[-2]) / (kg[-1] - kg[-2])
-        below, above = k[:, s] < kg[0], k[:, s] > kg[-1]
-        inside[below] = xg[0] + (k[below, s] - kg[0]) * slope_lo
-        inside[above] = xg[-1] + (k[above, s] - kg[-1]) * slope_hi
-        out[:, s] = np.where(np.isfinite(k[:, s]), inside, np.nan)
-    return out
-
-
 def _speed(t_s: np.ndarray, x: np.ndarray) -> np.ndarray:
     """Smoothed speed of all segments together, each in units of its own range, per frame."""
     span = np.nanmax(x, axis=0) - np.nanmin(x, axis=0)
@@ -291,12 +279,26 @@ def _compensated_holds(law0: Calibration, holds: Sequence[HoldsSeries], memory: 
     return out
 
 
-def _refit_static(law0, holds, memory, *, rig, degree):
-    """(Calibration, FitReport) of the static law fitted to the compensated holds (no holds: as it was)."""
-    if not holds:
+def _refit_static(law0, holds, memory, *, rig, degree, motion_points=()):
+    """(Calibration, FitReport) of the static law fitted to the compensated holds (and ``motion_points``);
+    with neither, as it was."""
+    if not holds and not motion_points:
         return law0, law0.report or FitReport(segments=[], warnings=[])
-    return fit_calibration(_compensated_holds(law0, holds, memory), rig=rig, degree=degree,
-                           recordings=law0.recordings)
+    return fit_calibration(_compensated_holds(law0, holds, memory) if holds else [], rig=rig, degree=degree,
+                           recordings=law0.recordings, motion=list(motion_points))
+
+
+def _static_heldout_law(law0, holds, r, k, n_train, *, rig, degree):
+    """The static law fitted like ``law0`` (holds and motion) but without the motion's held-out frames:
+    the static arm of the held-out comparison (``law0`` itself has seen them); ``law0`` if that fails."""
+    try:
+        from acquire.core.motion_pairs import bin_motion
+
+        pts = bin_motion(r[:n_train], k[:n_train], name="motion (training part)")
+        return _refit_static(law0, holds, StripMemory.identity(law0.n_segments), rig=rig, degree=degree,
+                             motion_points=[pts])[0]
+    except (CalibrationError, ValueError, ImportError):
+        return law0
 
 
 def _memory_curvature(law: Calibration, memory: StripMemory, resistance_ohm, rate_hz: float) -> np.ndarray:
@@ -351,17 +353,12 @@ def _holds_heldout(law0, holds, *, rig, degree, taus_s):
 # ----------------------------------------------------------------------------- motion
 
 
-def _fill_gaps(t: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """u with NaN filled by interpolation in time per column (0 where a column has nothing)."""
-    out = u.copy()
-    for s in range(u.shape[1]):
-        ok = np.isfinite(u[:, s])
-        out[~ok, s] = np.interp(t[~ok], t[ok], u[ok, s]) if ok.any() else 0.0
-    return out
+def _motion_arrays(law: Calibration, motion: Sequence[MotionSeries], *, lag_s: float = 0.0):
+    """Static signal u, x, reference (smoothed: for scoring), resistance of all sessions end to end, and
+    their frame rate, Hz.
 
-
-def _motion_arrays(law: Calibration, motion: Sequence[MotionSeries]):
-    """Static signal u, x, reference, resistance of all sessions end to end, and their frame rate, Hz."""
+    ``lag_s``: the reference is read this much later (s; :func:`_motion_lag`).
+    """
     parts, rates = [], []
     for i, m in enumerate(motion):
         t = np.asarray(m.t_s, float)
@@ -370,44 +367,63 @@ def _motion_arrays(law: Calibration, motion: Sequence[MotionSeries]):
             raise UserError(f"motion session {i}: need t_s (N,) and resistance and reference of shape "
                             f"(N, {law.n_segments}), got {t.shape}, {r.shape}, {k.shape}")
         rates.append(1.0 / float(np.median(np.diff(t))))
+        k = shift_reference(t, k, lag_s=lag_s)
         x = r / law.r0_ohm - 1.0
         x[~np.isfinite(k) | (t < t[0] + _BURN_IN_S)[:, None]] = np.nan  # unknown reference, unknown history
-        parts.append((_fill_gaps(t, invert_static_law(law, k)), x, k, r))
+        ks = smooth_in_time(t, k, sigma_s=_SCORE_SMOOTH_S)
+        parts.append((fill_gaps(t, invert_static_law(law, k)), x, ks, r))
     if max(rates) > 1.01 * min(rates):
         raise UserError(f"motion sessions: frame rates differ ({min(rates):.6g} to {max(rates):.6g} Hz)")
     u, x, k, r = (np.concatenate([p[j] for p in parts]) for j in range(4))
     return u, x, k, r, float(np.median(rates))
 
 
+def _motion_lag(law, motion, creep) -> float:
+    """The reference's lag, s: the one of _LAGS_S (refined) that leaves the hysteresis fit the least residual."""
+    gains, taus = creep_terms(creep.gains, creep.taus_s)
+
+    def sse(lag):
+        u, x, _, _, rate = _motion_arrays(law, motion, lag_s=lag)
+        u, x, rate, _ = decimate(u, x, rate_hz=rate, target_hz=_FIT_RATE_HZ)
+        return fit_hysteresis(u, x, rate_hz=rate, creep_gains=gains, creep_taus_s=taus)[1]
+
+    return best_lag(sse, _LAGS_S)
+
+
 def _fit_motion(u, x, rate_hz, creep, taus_s=DEFAULT_TAUS_S):
     """(StripMemory, per-segment (creep source, band %, warnings), n_train) from a motion stream.
 
-    Hysteresis and creep together; where the motion cannot identify the creep,
-    hysteresis alone on the reading with the holds' creep taken out. Fitted on
-    every k-th frame (about _FIT_RATE_HZ): play operators do not depend on the
-    rate and the shortest creep searched spans 10 such frames.
+    Creep: the holds' where they identified it (clean steps, holds of seconds);
+    elsewhere from the motion (forward fit, :func:`fit_memory`) where it is
+    identifiable. Hysteresis: the compensator fitted from the reading with
+    that creep taken out to the reference (:mod:`acquire.core.memory_invfit`).
     """
-    k = max(1, int(rate_hz // _FIT_RATE_HZ))
-    u, x, rate = u[::k], x[::k], rate_hz / k
-    span = np.ptp(u, axis=0)
-    scale = float(np.median(span[span > 0])) if np.any(span > 0) else 1.0
-    grid = [0.0] + [f * scale for f in _PI_FRACTIONS]
-    mem_a, rep_a = fit_memory(u, x, rate_hz=rate, thresholds=grid, taus_s=taus_s, n_creep=1)
-    need = [s for s, r in enumerate(rep_a.segments)
-            if any("creep" in w for w in r.warnings) or not r.creep_gains or abs(r.creep_gains[0]) < 0.01]
-    segs, info = list(mem_a.segments), [("motion", r.hysteresis_band_pct, r.warnings) for r in rep_a.segments]
+    u, x, rate, k = decimate(u, x, rate_hz=rate_hz, target_hz=_FIT_RATE_HZ)
+    gains, taus = creep_terms(creep.gains, creep.taus_s)
+    source = ["holds" if g else "-" for g in gains]
+    warns = [() for _ in source]
+    need = [s for s, g in enumerate(gains) if not g]
     if need:
-        gains = np.asarray(creep.gains, float)[need][:, None]
-        taus = np.where(gains != 0, np.nan_to_num(np.asarray(creep.taus_s, float)[need][:, None], nan=1.0), 1.0)
-        y = Relaxation(gains, taus, rate_hz=rate, inverse=True).process(x[:, need])
-        mem_b, rep_b = fit_memory(u[:, need], y, rate_hz=rate, thresholds=grid, taus_s=taus_s, n_creep=0)
+        span = np.ptp(u, axis=0)
+        scale = float(np.median(span[span > 0])) if np.any(span > 0) else 1.0
+        grid = [0.0] + [f * scale for f in _PI_FRACTIONS]
+        _, rep = fit_memory(u[:, need], x[:, need], rate_hz=rate, thresholds=grid, taus_s=taus_s, n_creep=1)
         for j, s in enumerate(need):
-            b, rb, c = mem_b.segments[j], rep_b.segments[j], [gains[j, 0]] if gains[j, 0] else []
-            segs[s] = SegmentMemory(b.pi_thresholds, b.pi_weights, c, [taus[j, 0]] if c else [])
-            dropped = () if c else tuple(w for w in rep_a.segments[s].warnings if "creep" in w)
-            info[s] = ("holds" if c else "-", rb.hysteresis_band_pct,
-                       tuple(w.replace(f"segment {j}:", f"segment {s}:") for w in rb.warnings) + dropped)
-    return StripMemory([_unit_scale(seg) for seg in segs]), info, rep_a.n_train * k
+            r = rep.segments[j]
+            w = tuple(w.replace(f"segment {j}:", f"segment {s}:") for w in r.warnings)
+            if r.creep_gains and abs(r.creep_gains[0]) >= 0.01 and not any("creep" in v for v in w):
+                gains[s], taus[s], source[s] = r.creep_gains[0], r.creep_taus_s[0], "motion"
+            warns[s] = w
+    pis, _, n_train = fit_hysteresis(u, x, rate_hz=rate, creep_gains=gains, creep_taus_s=taus)
+    segs, info = [], []
+    for s, (r, w) in enumerate(pis):
+        c = [float(gains[s])] if gains[s] else []
+        seg = _unit_scale(SegmentMemory(r, w, c, [float(taus[s])] if c else []))
+        ut = u[:n_train, s]
+        band = 100 * hysteresis_band(seg, float(ut.min()), float(ut.max()))
+        segs.append(seg)
+        info.append((source[s], band, warns[s]))
+    return StripMemory(segs), info, n_train * k
 
 
 def _unit_scale(seg: SegmentMemory) -> SegmentMemory:
@@ -436,9 +452,10 @@ def _with_motion(law0, holds, motion, creep, *, rig, degree):
     memory = _creep_memory(creep, law0.n_segments)
     if any(creep.gains):
         law, _ = _refit_static(law0, holds, memory, rig=rig, degree=degree)
+    lag = _motion_lag(law, motion, creep)
     taus, bands = DEFAULT_TAUS_S, None
     for _ in range(_MAX_ROUNDS):
-        u, x, k, r, rate = _motion_arrays(law, motion)
+        u, x, k, r, rate = _motion_arrays(law, motion, lag_s=lag)
         memory, info, n_train = _fit_motion(u, x, rate, creep, taus)
         law, report = _refit_static(law0, holds, memory, rig=rig, degree=degree)
         found = [t for seg in memory.segments for t in seg.creep_taus_s]
@@ -448,18 +465,36 @@ def _with_motion(law0, holds, motion, creep, *, rig, degree):
             break
         bands = new
     held = (np.arange(k.shape[0]) >= n_train)[:, None] & np.isfinite(x) & np.isfinite(k)
-    e_static = np.where(held, law0.curvature_per_m(r) - k, np.nan)
+    # scored where the law with memory is fitted (its holds' range), not where it extrapolates
+    held &= (k >= law.curvature_min_per_m) & (k <= law.curvature_max_per_m)
+    static = _static_heldout_law(law0, holds, r, k, n_train, rig=rig, degree=degree)
+    e_static = np.where(held, static.curvature_per_m(r) - k, np.nan)
     e_memory = np.where(held, _memory_curvature(law, memory, r, rate) - k, np.nan)
-    return law, report, memory, info, (_rms(e_static), _rms(e_memory)), rate
+    return law, report, memory, info, (_rms(e_static), _rms(e_memory)), rate, lag
 
 
 # ----------------------------------------------------------------------------- the whole fit
 
 
-def _segment_reports(law0, memory, info, heldout, how, extra_warnings):
-    """Per-segment reports; memory kept where it wins held-out by the margin."""
+def _segment_reports(law0, memory, info, heldout, how, extra_warnings, *, shown_by_holds=False):
+    """Per-segment reports; memory kept where it wins held-out by the margin, judged on the strip.
+
+    One strip is one material: its segments' memory is judged together (the
+    RMS over all segments with held-out data), so a noisy reference in one
+    segment does not decide that segment alone; a segment whose memory could
+    not be fitted or checked stays static. ``shown_by_holds``: the holds (other data) showed
+    creep: then memory is kept unless it does worse by the margin (a session scored on a part
+    of itself favours a static law fitted to the rest of it; virtual finger: a tie there, a
+    fifth of the static error on a grasp).
+    """
     e_static, e_memory = heldout
     span = np.maximum(law0.curvature_max_per_m - law0.curvature_min_per_m, 1e-12)
+    wins = False
+    if e_static is not None:
+        both = np.isfinite(e_static) & np.isfinite(e_memory)
+        rms_m, rms_s = (float(np.sqrt(np.mean(e[both] ** 2))) if both.any() else math.nan
+                        for e in (e_memory, e_static))
+        wins = rms_m * _KEEP_BELOW <= rms_s if shown_by_holds else rms_m < _KEEP_BELOW * rms_s
     out = []
     for s, seg in enumerate(memory.segments):
         source, band, warns = info[s]
@@ -467,7 +502,7 @@ def _segment_reports(law0, memory, info, heldout, how, extra_warnings):
         warns += extra_warnings.get(s, [])
         trivial = seg.creep_gains.size == 0 and seg.pi_weights.size == 1 and seg.pi_weights[0] == 1.0
         known = e_static is not None and math.isfinite(e_static[s]) and math.isfinite(e_memory[s])
-        kept = bool(not trivial and known and e_memory[s] < _KEEP_BELOW * e_static[s])
+        kept = bool(not trivial and known and wins)
         if not trivial and not kept:
             warns.append(f"segment {s}: memory does not improve the held-out error: static law kept"
                          if known else f"segment {s}: no held-out data to check the memory: static law kept")
@@ -551,8 +586,12 @@ def fit_strip_memory(static_calibration: Calibration, holds: Sequence[HoldsSerie
     run_warnings = list(creep.warnings)
     extra = {}
     if motion:
-        law, report, memory, info, heldout, rate = _with_motion(law0, holds, motion, creep, rig=rig, degree=degree)
-        how = "last 25 % of the motion sessions, curvature against the reference"
+        law, report, memory, info, heldout, rate, lag = _with_motion(law0, holds, motion, creep, rig=rig,
+                                                                     degree=degree)
+        how = f"last 25 % of the motion sessions, curvature against the reference (read {1e3 * lag:+.0f} ms later)"
+        if not _LAGS_S[0] < lag < _LAGS_S[-1]:
+            run_warnings.append(f"motion: the reference fits best {1e3 * lag:+.0f} ms later, the edge of the range "
+                                "searched: check the film's clock alignment")
     else:
         run_warnings.append("no unloading seen: hysteresis not identified (holds only; a motion session with a "
                             "reference curvature identifies it)")
@@ -571,7 +610,7 @@ def fit_strip_memory(static_calibration: Calibration, holds: Sequence[HoldsSerie
         except ValueError as exc:
             extra.setdefault(s, []).append(f"segment {s}: {exc}")
             memory = StripMemory([*memory.segments[:s], SegmentMemory(), *memory.segments[s + 1:]])
-    reports = _segment_reports(law0, memory, info, heldout, how, extra)
+    reports = _segment_reports(law0, memory, info, heldout, how, extra, shown_by_holds=bool(motion) and any(creep.gains))
     return _assemble(law0, report0, law, report, memory, reports, run_warnings)
 
 

@@ -61,14 +61,18 @@ Streams
 -------
 Every operator is stateful, causal and vectorised over frames: ``process``
 maps ``(N, S)`` (N frames, S segments, parameters per segment) to the same,
-with the same numbers for any chunking (bit for bit with numpy 2.4 and scipy
-1.17; the tests require 1e-12). The play recursion composes clamp maps, ``clamp(clamp(y, a1, b1), a2,
+with the same numbers for any chunking (the plays and the relaxation bit for
+bit with numpy 2.4 and scipy 1.17, a PI's weighted sum to rounding; the tests
+require 1e-12). The play recursion composes clamp maps, ``clamp(clamp(y, a1, b1), a2,
 b2) = clamp(y, clamp(a1, a2, b2), clamp(b1, a2, b2))``, so long chunks are an
 associative prefix scan (groups of 16 frames in 16 vectorised steps, group
 totals by a pairwise scan in O(log N) passes; O(N) work; exact, it only
-selects values); short chunks loop over frames. Linear filters use
-``scipy.signal.lfilter`` with state, or for a few frames the same arithmetic
-in Python floats. State starts at rest at the first valid
+selects values); short chunks (the live path: 10 frames at 1 kHz) loop over
+frames, one ``clip`` per frame on all segments and thresholds. Linear filters
+use ``scipy.signal.lfilter`` with state, or for a few frames the same
+arithmetic in the same order (first order in Python floats); the small-chunk
+kernels are in :mod:`acquire.core.memory_ops`. A chunk without NaN skips the
+gap handling. State starts at rest at the first valid
 input (plays equal to it, relaxation settled), forward and inverse alike, so
 a compensator fed a simulator's output recovers its input from the first
 frame. NaN in gives NaN out for that frame and segment; the state continues as
@@ -86,18 +90,36 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from acquire.core.memory_ops import LOOP_MAX as _LOOP_MAX
+from acquire.core.memory_ops import block_weights, first_order_coefs, play_small, plays, relax_small
+
 __all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMemory", "StripMemory", "pi_inverse_parameters"]
 
 
-def _signal():  # scipy.signal, loaded with the first memory model (about 1 s), never at start-up
+def _signal():  # scipy.signal (about 1 s to import): loaded with the first long chunk, never at start-up
     from scipy import signal
     return signal
 
+
+def _lfilter_zi(b: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """The state of ``lfilter(b, a)`` at rest under a unit step (what ``scipy.signal.lfilter_zi`` gives).
+
+    The steady state solves ``(I - A^T) zi = b[1:] - a[1:] b[0]`` with ``A`` the
+    companion matrix of ``a`` (a[0] = 1), scipy's own formula, in numpy so that
+    building a model (the virtual finger's strip at start-up) needs no scipy.
+    Checked against scipy in tests/acquire/core/test_memory_ops.py.
+    """
+    b = np.asarray(b, dtype=np.float64) / a[0]
+    a = np.asarray(a, dtype=np.float64) / a[0]
+    n = max(len(a), len(b))
+    a, b = np.pad(a, (0, n - len(a))), np.pad(b, (0, n - len(b)))
+    companion = np.zeros((n - 1, n - 1))
+    companion[0] = -a[1:]
+    companion[np.arange(1, n - 1), np.arange(n - 2)] = 1.0
+    return np.linalg.solve(np.eye(n - 1) - companion.T, b[1:] - a[1:] * b[0])
+
 _KIND = "tapcurve-strip-memory"
 _VERSION = 1
-_LOOP_MAX = 24  # frames: below this a loop over frames beats the scan (per-call overhead)
-_SCAN_LEAF = 8  # frames: scan recursion ends in a short loop
-_GROUP = 16  # frames per group of the play scan (measured: 8 to 32 about equal)
 _BLOCK = 2048  # frames per pass of the play scan: bounded work arrays, in cache
 _SEGMENT_KEYS = ("pi_thresholds", "pi_weights", "creep_gains", "creep_taus_s")
 
@@ -136,99 +158,6 @@ def _first_valid(x: np.ndarray) -> np.ndarray:
     return out
 
 
-def _compose_scan(e: np.ndarray) -> np.ndarray:
-    """Inclusive prefix compositions of clamp maps ``e`` (n, 2, C) (lower, upper bound), pairwise
-    recursive: ``o[k]`` bounds ``map_k o ... o map_0``; a map applied to bounds clamps both."""
-    n = e.shape[0]
-    o = np.empty_like(e)
-    o[0] = e[0]
-    if n <= _SCAN_LEAF:
-        for k in range(1, n):
-            np.maximum(o[k - 1], e[k, 0], out=o[k])
-            np.minimum(o[k], e[k, 1], out=o[k])
-        return o
-    m = n // 2
-    odd = e[1:2 * m:2]
-    pair = np.maximum(e[0:2 * m:2], odd[:, 0:1])  # even map, then the odd one after it
-    np.minimum(pair, odd[:, 1:2], out=pair)
-    s = _compose_scan(pair)  # s[j]: maps 0 .. 2j+1
-    o[1:2 * m:2] = s
-    k = (n - 1) // 2
-    if k:
-        ev, dst = e[2::2], o[2::2]
-        np.maximum(s[:k], ev[:, 0:1], out=dst)
-        np.minimum(dst, ev[:, 1:2], out=dst)
-    return o
-
-
-def _bounds(u: np.ndarray, r: np.ndarray, check_nan: bool):
-    """Clamp bounds ``(u - r, u + r)``; with ``check_nan`` a NaN input gives (-inf, +inf),
-    an identity map: the state is held."""
-    lo, hi = u - r, u + r
-    if check_nan:
-        bad = np.isnan(u)
-        np.copyto(lo, -np.inf, where=bad)
-        np.copyto(hi, np.inf, where=bad)
-    return lo, hi
-
-
-def _play_loop(u, r, y0, check_nan):
-    """Few frames: plays (n, S, K) by the recursion itself, vectorised over S and K."""
-    lo, hi = _bounds(u[:, :, None], r, check_nan)
-    out = np.empty_like(lo)
-    y = y0
-    for lo_n, hi_n, o in zip(lo, hi, out):  # iteration makes views faster than indexing
-        np.maximum(y, lo_n, out=o)
-        np.minimum(o, hi_n, out=o)
-        y = o
-    return out
-
-
-def _play_grouped(u, r, y0, check_nan):
-    """Plays for n = G * _GROUP frames, laid out (_GROUP, S, K, G): frame g * _GROUP + k at [k, ..., g].
-
-    Within each group of _GROUP frames the prefix compositions are a loop over
-    k whose operations run on contiguous (2, S, K, G) slabs; the group totals
-    are composed by :func:`_compose_scan`; then every frame is one clamp of the
-    state at its group's start.
-    """
-    n, s = u.shape
-    g, L = n // _GROUP, _GROUP
-    lo, hi = _bounds(u.reshape(g, L, s).transpose(1, 2, 0)[:, :, None, :], r[:, :, None], check_nan)
-    o = np.empty((L, 2) + lo.shape[1:])  # o[k]: bounds of the group's maps 0..k composed
-    o[0, 0], o[0, 1] = lo[0], hi[0]
-    for k in range(1, L):
-        np.maximum(o[k - 1], lo[k], out=o[k])
-        np.minimum(o[k], hi[k], out=o[k])
-    tot = _compose_scan(np.moveaxis(o[L - 1], -1, 0).reshape(g, 2, -1))
-    start = np.empty((g, r.size))  # state at each group's start
-    start[0] = y0.reshape(-1)
-    np.maximum(start[0], tot[:-1, 0], out=start[1:])
-    np.minimum(start[1:], tot[:-1, 1], out=start[1:])
-    out = np.empty((L,) + r.shape + (g,))
-    np.maximum(start.T.reshape(r.shape + (g,)), o[:, 0], out=out)
-    np.minimum(out, o[:, 1], out=out)
-    return out
-
-
-def _plays(u, r, y0, weights, check_nan):
-    """Plays (n, S, K), or with ``weights`` (S, K) their weighted sums (n, S); and the end state."""
-    n = u.shape[0]
-    m = 0 if n <= _LOOP_MAX else n - n % _GROUP
-    parts, y = [], y0
-    if m:
-        p = _play_grouped(u[:m], r, y0, check_nan)  # (L, S, K, G)
-        y = p[-1, :, :, -1]
-        p = p.transpose(3, 0, 1, 2).reshape((m,) + r.shape)
-        # the same sum on the same layout as below: the same numbers for any chunking
-        parts.append(p if weights is None else np.einsum("nsk,sk->ns", p, weights))
-    if m < n:
-        p = _play_loop(u[m:], r, y, check_nan)
-        y = p[-1]
-        parts.append(p if weights is None else np.einsum("nsk,sk->ns", p, weights))
-    return (parts[0] if len(parts) == 1 else np.concatenate(parts)), y
-
-
 class _Stage:
     """Common stream handling: NaN forward-fill, reset, state."""
 
@@ -243,6 +172,9 @@ class _Stage:
         if x.ndim != 2 or x.shape[1] != self.n_segments:
             raise ValueError(f"input: expected shape (frames, {self.n_segments}), got {x.shape}")
         if x.shape[0] == 0:
+            return self._run(x)
+        if not math.isnan(np.add.reduce(x, None)):  # no gap (the common case): nothing to fill
+            self._last = x[-1].copy()
             return self._run(x)
         filled, mask, self._last = _ffill(x, self._last)
         out = self._run(filled)
@@ -297,14 +229,17 @@ class PlayOperator(_Stage):
         if n == 0:
             return np.empty((0,) + (self.thresholds.shape if weights is None else (self.n_segments,)))
         y0, started = self._y, self._started
+        if started and n <= _LOOP_MAX:  # the live path: a few frames
+            out, self._y = play_small(u, self.thresholds, y0, weights=None if weights is None else self._block_w)
+            return out
         if not started:  # start at rest at the first valid input
             y0 = np.where(np.isnan(y0), _first_valid(u)[:, None], y0)
         if n <= _BLOCK:
-            out, y0 = _plays(u, self.thresholds, y0, weights, not started)
+            out, y0 = plays(u, self.thresholds, y0, weights, not started)
         else:  # blocks: bounded work arrays, in cache
             parts = []
             for a in range(0, n, _BLOCK):
-                p, y0 = _plays(u[a:a + _BLOCK], self.thresholds, y0, weights, not started)
+                p, y0 = plays(u[a:a + _BLOCK], self.thresholds, y0, weights, not started)
                 parts.append(p)
             out = np.concatenate(parts)
         self._y = y0.copy()
@@ -387,6 +322,7 @@ class PIOperator(PlayOperator):
         _check_pi(self.thresholds, w)
         self.weights = w
         w.setflags(write=False)
+        self._block_w = block_weights(w)
 
     def inverse(self) -> PIOperator:
         """The analytic inverse PI operator (new instance, not started)."""
@@ -456,12 +392,15 @@ class Relaxation(_Stage):
             self._ba.append((b, a))
             if len(den) == 1:
                 continue  # no creep term: identity
-            self._zi_unit[:len(den) - 1, s] = _signal().lfilter_zi(num, den)
+            self._zi_unit[:len(den) - 1, s] = _lfilter_zi(num, den)
             groups.setdefault((b.tobytes(), a.tobytes()), (b, a, []))[2].append(s)
         self._groups = [(b, a, np.array(cols)) for b, a, cols in groups.values()]
         self._identity = np.array([len(d) == 1 for _, d in polys])
-        self._creep = [(s, b.tolist(), a.tolist()) for s, (b, a) in enumerate(self._ba)
-                       if not self._identity[s]]
+        creep = np.flatnonzero(~self._identity)  # the small path filters these columns only
+        self._creep_cols = None if creep.size == self.n_segments else creep
+        self._b = np.array([b for b, _ in self._ba]).T[:, creep].copy()  # (order + 1, columns)
+        self._a = np.array([a for _, a in self._ba]).T[:, creep].copy()
+        self._coefs = first_order_coefs(self._b, self._a)
 
     def _run(self, x: np.ndarray) -> np.ndarray:
         n = x.shape[0]
@@ -478,20 +417,15 @@ class Relaxation(_Stage):
         return out
 
     def _run_small(self, x: np.ndarray) -> np.ndarray:
-        """Few frames: lfilter's transposed direct form II in Python floats, same operations
-        in the same order as scipy's C loop (so the same numbers, whatever the chunking)."""
-        order, cols, zs = self.order, x.T.tolist(), self._zi.T.tolist()
-        for s, b, a in self._creep:
-            z, b0, bl, al, ys = zs[s], b[0], b[order], a[order], []
-            for xn in cols[s]:
-                yn = z[0] + b0 * xn
-                for k in range(order - 1):
-                    z[k] = z[k + 1] + xn * b[k + 1] - yn * a[k + 1]
-                z[order - 1] = xn * bl - yn * al
-                ys.append(yn)
-            cols[s] = ys
-        self._zi = np.array(zs).T.copy()
-        return np.array(cols).T.copy()
+        """Few frames: lfilter's recursion vectorised over segments (:func:`relax_small`: the
+        same operations in the same order as scipy's C loop, so the same numbers, whatever the chunking)."""
+        if self._creep_cols is None:
+            out, self._zi = relax_small(x, self._zi, self._b, self._a, coefs=self._coefs)
+            return out
+        out = x.copy()
+        out[:, self._creep_cols], self._zi[:, self._creep_cols] = relax_small(
+            x[:, self._creep_cols], self._zi[:, self._creep_cols], self._b, self._a, coefs=self._coefs)
+        return out
 
     def _run_starting(self, x: np.ndarray) -> np.ndarray:
         """Segments whose state is unset start at rest at their first valid (non-NaN) input."""

@@ -17,6 +17,8 @@ Requirement (the brief): parameters back within 10 %.
 """
 from __future__ import annotations
 
+import importlib.util
+import io
 import json
 import subprocess
 import sys
@@ -26,6 +28,7 @@ import numpy as np
 import pytest
 
 from acquire.commands.calibrate import calibrate_files, holds_from_recording
+from acquire.commands.calibrate_motion import calibrate_with_motion
 from acquire.commands.calibrate_memory import (MotionSeries, add_memory, fit_strip_memory, holds_series_from_files,
                                                invert_static_law, memory_report_lines)
 from acquire.core.calibration import Calibration, fit_calibration
@@ -36,6 +39,7 @@ from acquire.link.frames import FrameBlock, FrameRing
 from acquire.rig import load_rig
 from acquire.store.recorder import Recorder
 from acquire.store.recording import open_recording
+from acquire.virtual.strip import StripSettings
 
 REPO = Path(__file__).resolve().parents[3]
 RIG_PATH = REPO / "acquire" / "rigs" / "demo_finger.toml"
@@ -204,7 +208,8 @@ def test_motion_identifies_hysteresis_and_creep_within_10_percent(motion_fit):
     xs = x_of_curvature(km[: int(0.75 * km.size)])  # the band over the range the fit saw
     band = 100 * hysteresis_band(HYSTERESIS, float(xs.min()), float(xs.max()))
     for seg in res.report.segments:
-        assert seg.kept and seg.creep_from == "motion"
+        # creep from the holds' clean steps where they show it (these holds do), else from the motion
+        assert seg.kept and seg.creep_from in ("holds", "motion")
         assert seg.creep_gain == pytest.approx(0.15, rel=0.1)
         assert seg.creep_tau_s == pytest.approx(1.0, rel=0.1)
         assert seg.hysteresis_band_pct == pytest.approx(band, rel=0.1)
@@ -255,3 +260,40 @@ def test_calibrate_command_writes_the_memory(files):
     assert doc["memory"]["kind"] == "tapcurve-strip-memory"
     assert len(doc["memory"]["fit_report"]["segments"]) == 6
     assert Calibration.load(out).memory_model is not None
+
+
+# --- end to end on the virtual finger's real strip ------------------------------------------------
+
+#: mean tip error with the memory model, calibrated from holds plus one 40 s filmed free motion and
+#: measured on a grasp (bench/bench_memory.py): 1.9 % (1.1 % on an earlier free-motion course); the
+#: issue's target is 1.5 %, not met on every course yet. This limit guards what is reached.
+TIP_LIMIT_PERCENT = 2.5
+
+
+def _bench_memory():
+    spec = importlib.util.spec_from_file_location("bench_memory", REPO / "bench" / "bench_memory.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.mark.slow  # about 25 s of CPU, a minute on a loaded 2-core machine
+def test_real_strip_holds_plus_film_end_to_end(tmp_path):
+    # Figures against the virtual finger's ground truth (its elastica model), not proofs: calibrated from
+    # labelled holds plus one filmed free motion, each a new run of the finger (strip at rest, clock from 0),
+    # then a different motion (the grasp) processed causally, in chunks, as live.
+    bench = _bench_memory()
+    rig = bench.filmed_rig()
+    holds, rec, csv, grasp, truth = bench.session_files(tmp_path, rig, StripSettings(mode="real"), hold_s=6.0,
+                                                        motion_s=40.0, grasp_s=16.0)
+    quiet = io.StringIO()
+    run = calibrate_with_motion([holds], [(rec, csv)], rig=rig, stdout=quiet, stderr=quiet)
+    static = calibrate_with_motion([holds], [(rec, csv)], rig=rig, stdout=quiet, stderr=quiet, static=True,
+                                   degree=run.degree)
+    memory_pct = bench.tip_error_pct(rig, run.calibration, grasp, truth)
+    static_pct = bench.tip_error_pct(rig, static.calibration, grasp, truth)
+    print(f"\nreal strip, holds + film: mean tip error {memory_pct:.2f} % with memory, {static_pct:.2f} % static "
+          f"(target 1.5 %)")
+    assert all(s.kept for s in run.memory_report.segments)
+    assert memory_pct <= TIP_LIMIT_PERCENT
+    assert memory_pct < 0.4 * static_pct
