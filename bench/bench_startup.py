@@ -10,7 +10,10 @@ extra run under ``python -X importtime``. Cases:
 - ``process, first frame (proxy)``: ``import acquire.core.pipeline, h5py``, what
   ``process`` loads before it reads the first frame: target at most 0.8 s;
 - ``process demo recording``: the whole ``process`` of the demo recording
-  (about 30 s of frames) to a temporary file, for scale.
+  (about 30 s of frames) to a temporary file, for scale;
+- ``virtual-device, port ready``: ``virtual-device`` (real strip, the default)
+  until it prints its port's path, the moment a ``record --port`` could open it;
+  no target of its own (it should stay near ``--help``).
 
 The command line is ``python -m acquire.commands.cli`` unless ``--cmd`` names
 another module (``--cmd display.cli``). Prints a table, then the figures as JSON.
@@ -31,6 +34,7 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parents[1]
 DEMO = REPO / "recordings" / "demo_grasp.h5"
 DEMO_CAL = REPO / "recordings" / "demo_calibration.json"
+READY_LINE = "<until the first line>"  # a case that runs until its first line of output, then is stopped
 TARGETS_S = {"--help": 0.5, "inspect": 0.5, "process, first frame (proxy)": 0.8}
 
 
@@ -41,6 +45,7 @@ def _cases(cmd: str, out_dir: Path) -> dict[str, list[str]]:
         "inspect": cli + ["inspect", str(DEMO)],
         "virtual-device --help": cli + ["virtual-device", "--help"],
         "live --help": cli + ["live", "--help"],
+        "virtual-device, port ready": [READY_LINE, *cli, "virtual-device"],
         "process, first frame (proxy)": ["-c", "import acquire.core.pipeline, h5py"],
         "process demo recording": cli + ["process", str(DEMO), "--calibration", str(DEMO_CAL),
                                          "--out", str(out_dir / "processed.h5"), "--quiet"],
@@ -51,7 +56,25 @@ def _env() -> dict:
     return {**os.environ, "PYTHONPATH": str(REPO), "QT_QPA_PLATFORM": "offscreen"}
 
 
+def _run_until_line(args: list[str], cwd: Path) -> float:
+    """Wall time from start to the command's first line on stdout; the command is then stopped (SIGTERM)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, *args], cwd=cwd, env=_env(), stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        line = proc.stdout.readline()
+        wall = time.perf_counter() - t0
+    finally:
+        proc.terminate()
+        proc.wait(timeout=30)
+    if not line:
+        raise SystemExit(f"{' '.join(args)} printed nothing: {proc.stderr.read()[-500:]}")
+    return wall
+
+
 def _run_once(args: list[str], cwd: Path) -> float:
+    if args and args[0] == READY_LINE:
+        return _run_until_line(args[1:], cwd)
     for f in cwd.glob("processed*.h5"):  # process never overwrites: start clean each run
         f.unlink()
     t0 = time.perf_counter()
@@ -64,6 +87,8 @@ def _run_once(args: list[str], cwd: Path) -> float:
 
 def _top_imports(args: list[str], cwd: Path, *, n: int = 5) -> list[tuple[str, float]]:
     """The packages that cost most to import (sum of their modules' own times, s), from ``-X importtime``."""
+    if args and args[0] == READY_LINE:  # a command that runs on: its imports until it is stopped
+        args = ["-c", "import acquire.commands.cli, acquire.virtual.device"]
     for f in cwd.glob("processed*.h5"):
         f.unlink()
     res = subprocess.run([sys.executable, "-X", "importtime", *args], cwd=cwd, env=_env(),

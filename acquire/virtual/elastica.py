@@ -17,11 +17,14 @@ Threads: pure, any thread; returned arrays are new and owned by the caller
 """
 from __future__ import annotations
 
+import dataclasses
 import functools
 import math
 from dataclasses import dataclass
 
 import numpy as np
+
+from acquire.virtual.table_cache import load_tables, store_tables
 
 __all__ = ["ElasticaSolution", "solve_elastica", "ElasticaTables", "elastica_tables", "node_grid",
            "bilinear", "arc_xy", "simpson_mean"]
@@ -238,7 +241,28 @@ def elastica_tables(
     range and an odd ``n_moment``): the relaxed finger (no moment, no load)
     then reads exactly straight instead of an interpolation between two bent
     neighbours. Raises ValueError otherwise.
+
+    Solving takes one to a few seconds, so the tables are also kept on disk
+    (:mod:`acquire.virtual.table_cache`, keyed by the parameters and this
+    module's code): the next process that starts a virtual finger loads them.
     """
+    params = (tuple(float(v) for v in segment_lengths_m), float(ei), float(phi), float(lever_m),
+              float(moment_lo), float(moment_hi), int(n_moment), float(load_hi), int(n_load))
+    arrays = load_tables(params, _CODE_FILE)
+    if arrays is not None and set(arrays) != {f.name for f in dataclasses.fields(ElasticaTables)}:
+        arrays = None  # written by another layout of the tables: solve again
+    out = ElasticaTables(**arrays) if arrays is not None else _solve_tables(*params)
+    if arrays is None:
+        store_tables(params, _CODE_FILE, dataclasses.asdict(out))
+    for arr in (out.moment_grid, out.load_grid, out.s_m, out.tap_nodes, out.theta_taps, out.xy_nodes, out.basis):
+        arr.setflags(write=False)  # shared between models through the cache
+    return out
+
+
+_CODE_FILE = __file__
+
+
+def _solve_tables(segment_lengths_m, ei, phi, lever_m, moment_lo, moment_hi, n_moment, load_hi, n_load):
     seg = np.asarray(segment_lengths_m)
     length = float(seg.sum())
     s_m, tap_nodes = node_grid(seg)
@@ -277,15 +301,12 @@ def elastica_tables(
         for k in range(seg.shape[0]):
             a, e = tap_nodes[k], tap_nodes[k + 1]
             basis[b, :, k] = simpson_mean(f[:, a : e + 1], s_m[a : e + 1])
-    out = ElasticaTables(
+    return ElasticaTables(
         moment_grid=moment_grid, load_grid=load_grid, s_m=s_m, tap_nodes=tap_nodes,
         theta_taps=np.ascontiguousarray(theta[:, tap_nodes]),
         xy_nodes=np.ascontiguousarray(xy.reshape(rows, -1)),
         basis=basis,
     )
-    for arr in (out.moment_grid, out.load_grid, out.s_m, out.tap_nodes, out.theta_taps, out.xy_nodes, out.basis):
-        arr.setflags(write=False)  # shared between models through the cache
-    return out
 
 
 def _continue_in_load(length, ei, moments, load_from, load_to, phi, lever_m, s_m, k_from, guess):

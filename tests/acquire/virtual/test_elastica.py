@@ -47,3 +47,25 @@ def test_moment_grid_keeps_a_node_at_zero():
     assert 0.0 in _tables(21).moment_grid
     with pytest.raises(ValueError, match="no node at 0"):
         _tables(20)
+
+
+def test_tables_kept_on_disk_are_the_solved_ones(tmp_path, monkeypatch):
+    # acquire/virtual/table_cache.py: a second process loads what the first solved, bit for bit;
+    # a damaged file is solved again and replaced; an empty TAPCURVE_CACHE_DIR switches the disk off.
+    import dataclasses
+
+    solve = elastica_tables.__wrapped__  # past the in-process cache
+    monkeypatch.setenv("TAPCURVE_CACHE_DIR", str(tmp_path))
+    fresh = solve(SEG, EI, -0.6, 0.0, -5 * EI / LEN, 5 * EI / LEN, 11, 2 * EI / LEN**2, 5)
+    (path,) = tmp_path.glob("elastica-*.npz")
+    loaded = solve(SEG, EI, -0.6, 0.0, -5 * EI / LEN, 5 * EI / LEN, 11, 2 * EI / LEN**2, 5)
+    for f in dataclasses.fields(fresh):
+        np.testing.assert_array_equal(getattr(loaded, f.name), getattr(fresh, f.name))
+    path.write_bytes(b"not a numpy file")
+    again = solve(SEG, EI, -0.6, 0.0, -5 * EI / LEN, 5 * EI / LEN, 11, 2 * EI / LEN**2, 5)
+    np.testing.assert_array_equal(again.xy_nodes, fresh.xy_nodes)
+    assert path.read_bytes()[:2] == b"PK"  # replaced by a readable .npz (a zip file)
+    other = tmp_path / "off"
+    monkeypatch.setenv("TAPCURVE_CACHE_DIR", "")
+    solve(SEG, EI, -0.6, 0.0, -5 * EI / LEN, 5 * EI / LEN, 13, 2 * EI / LEN**2, 5)
+    assert len(list(tmp_path.glob("elastica-*.npz"))) == 1 and not other.exists()
