@@ -180,12 +180,14 @@ def test_health_text_mode_judges_drift_against_a_given_calibration(calibration, 
     path = tmp_path / "moved.json"
     moved(calibration, D).save(path)
     env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[2]))
-    r = subprocess.run([sys.executable, "-m", "display.cli", "health", "--text", "--duration", "4", "--strip", "ideal",
+    r = subprocess.run([sys.executable, "-m", "display.cli", "health", "--text", "--duration", "8", "--strip", "ideal",
                         "--hold", "flat", "--calibration", str(path)], env=env, capture_output=True, text=True,
                        timeout=120)
     assert r.returncode == 0, r.stderr
-    last = [t for t in r.stdout.split("\n\n") if t.strip()][-1]
-    line = next(x for x in last.splitlines() if x.startswith("flat drift"))
+    # 8 s: time for a loaded machine to start the finger, settle 1 s and measure 1 s of flat frames
+    lines = [x for x in r.stdout.splitlines() if x.startswith("flat drift since")]
+    assert lines, r.stdout[-2000:]
+    line = lines[-1]
     assert "TARE DUE" in line, line
     pct = float(line.split("calibration")[1].split("%")[0])
     assert abs(pct - 100 * D) < 1.0, line
