@@ -7,20 +7,26 @@ segment and the base pose); the recording's resistance is filtered as live
 (:func:`acquire.commands.common.filtered_intervals`); the camera clock is
 aligned with the device clock (:func:`acquire.core.align.align_clocks` on the
 relative resistance change against the marker curvature). Camera frames with
-a good marker fit are mapped to device time and paired with the filtered
+a good marker fit are mapped to device time, moved by the pairing lag (the
+filters' delay and what the alignment left, found from the pairs:
+:func:`acquire.core.motion_pairs.pairing_lag`) and paired with the filtered
 resistance interpolated there.
 
-Binning, and why: a session gives thousands of frames, most of them near the
-resting shape. Frames are binned per segment by resistance (the precise
+Binning, and why: a session gives thousands of frames, most of them at a few
+pause levels. Frames are binned per segment by resistance (the precise
 variable: the curvature, the noisy one, is averaged inside each bin, which is
 the regression of curvature on resistance the model makes, so marker noise
-does not flatten the law), bins of equal width across the range covered.
-Each bin then counts like one hold (one point at one curvature): the fit is
-spread evenly over the range, like a well-chosen set of jigs, and thousands
-of near-flat frames do not outweigh a few holds. Each session's flat
-resistance is where its bins cross curvature 0, and its bins enter the fit as
-relative changes from that, so a drift of the flat resistance between
-sessions does not bias the law.
+does not flatten the law), bins of equal width on each side of the flat
+resistance (:func:`acquire.core.motion_pairs.bin_motion`). A bin with many
+frames counts like one hold (one point at one curvature), one with few frames
+less (its mean carries the markers' noise:
+:func:`acquire.core.calibration_fit.motion_bin_weight`): the fit is spread
+evenly over the range covered, moves included, like a well-chosen set of
+jigs, and thousands of frames at a pause do not outweigh a few holds. Each
+session's flat resistance is where its frames cross curvature 0 (a fit with a
+kink there: :func:`acquire.core.motion_pairs.flat_resistance`), and its bins
+enter the fit as relative changes from that, so a drift of the flat
+resistance between sessions does not bias the law.
 
 Threads: the calling (main) thread; everything returned is new and owned by
 the caller.
@@ -43,8 +49,11 @@ from acquire.core.align import Alignment, AlignmentError, align_clocks
 from acquire.core.calibration import (
     CalibrationError, Hold, check_distinct_recordings, file_sha256, fit_calibration,
 )
-from acquire.core.calibration_fit import MotionPoints
+from acquire.core.calibration_fit import MotionPoints, motion_bin_weight
 from acquire.core.markers import MarkerError, MarkerFit, MarkerTrack, fit_marker_frames, read_marker_csv
+from acquire.core.motion_pairs import (
+    MIN_BIN_FRAMES, N_BINS, bin_motion, paired_resistance, pairing_lag, recording_covers,
+)
 from acquire.errors import UserError
 from acquire.rig import Rig
 from acquire.store.recording import open_recording
@@ -56,16 +65,13 @@ __all__ = [
     "POSE_WINDOW_S",
 ]
 
-#: bins per segment across the resistance range a session covers (under 2 1/m each on the demo finger)
-N_BINS = 60
-#: a bin with fewer camera frames is dropped (its mean curvature would carry the markers' noise)
-MIN_BIN_FRAMES = 10
 #: frames whose markers fit worse than this RMS distance are not used, mm
 MAX_RESIDUAL_MM = 1.0
 #: a segment's curvature less certain than this (or than twice its median) in a frame is not used there, 1/m
 #: (the fit's own uncertainty at its noise floor of 0.3 mm: an upper bound, about 7 1/m at end segments)
 MAX_CURVATURE_SD_PER_M = 25.0
-#: frames this close to the recording's start are not used: the filters settle, s
+#: frames this close to the recording's start (or the end of a gap of lost frames) are not used: the filters
+#: settle, s
 SETTLE_S = 0.2
 #: points kept per trace for the report picture
 TRACE_POINTS = 4000
@@ -83,6 +89,10 @@ class MotionSession:
         The two files as given.
     alignment : Alignment
         Camera -> device clock.
+    pairing_lag_s : float
+        Added to the aligned camera times before pairing with the filtered
+        resistance (the filters' delay and what the alignment left),
+        s (:func:`acquire.core.motion_pairs.pairing_lag`).
     frames, frames_used : int
         Camera frames in the track; frames kept for the fit.
     marker_residual_mm : float
@@ -90,7 +100,7 @@ class MotionSession:
     points : MotionPoints
         The bins of each segment.
     t_device_s : ndarray, shape (F,)
-        Device time of each camera frame, s.
+        Device time of each camera frame's pair (aligned time plus the pairing lag), s.
     curvature_per_m : ndarray, shape (F, S)
         Marker curvature per frame, 1/m; NaN where not used.
     resistance_ohm : ndarray, shape (F, S)
@@ -104,6 +114,7 @@ class MotionSession:
     recording: str
     markers: str
     alignment: Alignment
+    pairing_lag_s: float
     frames: int
     frames_used: int
     marker_residual_mm: float
@@ -121,6 +132,7 @@ class MotionSession:
         return {
             "recording": self.recording, "markers": self.markers, "offset_s": round(a.offset_s, 6),
             "rate_ppm": round(a.rate_ppm, 3), "sharpness": round(a.sharpness, 3), "score": round(a.score, 4),
+            "pairing_lag_s": round(self.pairing_lag_s, 6),
             "frames": self.frames, "frames_used": self.frames_used,
             "marker_residual_mm": round(self.marker_residual_mm, 4),
             "r0_ohm": [None if not math.isfinite(v) else round(float(v), 3) for v in self.points.r0_ohm],
@@ -189,7 +201,7 @@ def _good_frames(fit: MarkerFit, t_dev: np.ndarray, t_rec: np.ndarray) -> tuple[
     ok = fit.ok & np.isfinite(fit.residual_m)
     med = float(np.median(fit.residual_m[ok])) if ok.any() else 0.0
     limit = min(MAX_RESIDUAL_MM * 1e-3, max(3.0 * med, 0.05e-3))
-    frame = ok & (fit.residual_m <= limit) & (t_dev >= t_rec[0] + SETTLE_S) & (t_dev <= t_rec[-1])
+    frame = ok & (fit.residual_m <= limit) & recording_covers(t_dev, t_rec, settle_s=SETTLE_S)
     sd = np.where(np.isfinite(fit.curvature_sd_per_m) & frame[:, None], fit.curvature_sd_per_m, np.nan)
     with np.errstate(invalid="ignore"):
         typical = np.nan_to_num(np.nanmedian(sd, axis=0), nan=0.0) if frame.any() else np.zeros(sd.shape[1])
@@ -233,93 +245,24 @@ def load_motion_session(rec_path, markers_path, *, rig: Rig, n_bins: int = N_BIN
     if frame.sum() < 2 * MIN_BIN_FRAMES:
         raise UserError(f"{where}: only {int(frame.sum())} camera frames fit the markers well inside the "
                         f"recording; film the whole finger, with its markers in view, while recording")
-    r_cam = np.stack([np.interp(t_dev, rec["t"], rec["r"][:, k]) for k in range(rig.n_segments)], axis=1)
     kappa = np.where(seg, fit.curvature_per_m, np.nan)
+    lag = pairing_lag(t_dev, kappa, rec["t"], rec["r"])
+    t_pair = t_dev + lag  # where the filtered resistance shows each camera frame's shape
+    frame &= recording_covers(t_pair, rec["t"], settle_s=SETTLE_S)
+    kappa[~frame] = np.nan
+    r_cam = paired_resistance(t_pair, rec["t"], rec["r"])
     points = bin_motion(r_cam, kappa, n_bins=n_bins, name=where)
     step = max(1, rec["t"].size // TRACE_POINTS)
     session = MotionSession(
-        recording=str(rec_path), markers=str(markers_path), alignment=alignment, frames=int(track.t_s.size),
+        recording=str(rec_path), markers=str(markers_path), alignment=alignment, pairing_lag_s=lag,
+        frames=int(track.t_s.size),
         frames_used=int(frame.sum()), marker_residual_mm=float(np.sqrt(np.mean(fit.residual_m[frame] ** 2)) * 1e3),
-        points=points, t_device_s=t_dev, curvature_per_m=kappa, resistance_ohm=r_cam,
+        points=points, t_device_s=t_pair, curvature_per_m=kappa, resistance_ohm=r_cam,
         trace_t_s=rec["t"][::step].copy(), trace_ohm=rec["r"][::step].copy(),
         provenance={**rec["provenance"], "markers": str(markers_path), "markers_name": Path(markers_path).name,
                     "markers_sha256": file_sha256(markers_path), "motion": True},
     )
     return session, rec["notes"]
-
-
-def bin_motion(resistance_ohm, curvature_per_m, *, n_bins: int = N_BINS, min_frames: int = MIN_BIN_FRAMES,
-               name: str = "") -> MotionPoints:
-    """Bin frames by resistance per segment; the flat resistance where the bins cross curvature 0.
-
-    Parameters
-    ----------
-    resistance_ohm, curvature_per_m : array_like, shape (F, S)
-        Paired frames (NaN: not used).
-    n_bins : int
-        Equal-width bins between the 0.2 % and 99.8 % points of each segment's resistance.
-    min_frames : int
-        Fewer frames make no bin.
-
-    Returns
-    -------
-    MotionPoints
-        Relative changes from the session's own flat resistance (NaN where the
-        bins do not cross 0: then ``x`` holds no points for that segment).
-    """
-    r, k = np.asarray(resistance_ohm, dtype=float), np.asarray(curvature_per_m, dtype=float)
-    xs, ks, fs, r0s = [], [], [], []
-    for s in range(r.shape[1]):
-        ok = np.isfinite(r[:, s]) & np.isfinite(k[:, s])
-        rb, kb, nb = _bins(r[ok, s], k[ok, s], n_bins, min_frames)
-        r0 = _zero_crossing(r[ok, s], k[ok, s])
-        keep = np.isfinite(r0) & (nb > 0)
-        xs.append((rb[keep] - r0) / r0 if np.isfinite(r0) else np.zeros(0))
-        ks.append(kb[keep] if np.isfinite(r0) else np.zeros(0))
-        fs.append(nb[keep] if np.isfinite(r0) else np.zeros(0, dtype=int))
-        r0s.append(r0)
-    return MotionPoints(x=xs, reference_per_m=ks, frames=fs, r0_ohm=np.array(r0s), name=name)
-
-
-def _bins(r, k, n_bins, min_frames):
-    """Mean resistance, mean curvature and frame count of each equal-width resistance bin with enough frames."""
-    if r.size < min_frames:
-        return np.zeros(0), np.zeros(0), np.zeros(0, dtype=int)
-    lo, hi = np.quantile(r, [0.002, 0.998])
-    if not hi > lo:
-        return np.zeros(0), np.zeros(0), np.zeros(0, dtype=int)
-    i = np.clip(((r - lo) / (hi - lo) * n_bins).astype(np.int64), 0, n_bins - 1)
-    inside = (r >= lo) & (r <= hi)
-    n = np.bincount(i[inside], minlength=n_bins)
-    sr = np.bincount(i[inside], weights=r[inside], minlength=n_bins)
-    sk = np.bincount(i[inside], weights=k[inside], minlength=n_bins)
-    m = n >= min_frames
-    return sr[m] / n[m], sk[m] / n[m], n[m]
-
-
-def _zero_crossing(r, k, *, window: float = 0.12, iterations: int = 4) -> float:
-    """Resistance where the frames' curvature crosses 0, ohm (NaN: the motion never passes flat).
-
-    A local quadratic of curvature on resistance (the precise variable, so
-    marker noise does not bias it) through the frames within ``window``
-    (relative, about +-10 1/m on the demo finger) of the current estimate,
-    moved to its zero crossing a few times over; the start is the median
-    resistance of the frames within 3 1/m of flat.
-    """
-    near = np.abs(k) < 3.0
-    if near.sum() < MIN_BIN_FRAMES:
-        return math.nan
-    r0 = float(np.median(r[near]))
-    for _ in range(iterations):
-        sel = np.abs(r - r0) <= window * r0
-        u = (r[sel] - r0) / r0
-        if sel.sum() < 3 * MIN_BIN_FRAMES or np.ptp(u) <= 0:
-            return math.nan
-        c2, c1, c0 = np.polyfit(u, k[sel], 2)
-        if not c1 > 0:
-            return math.nan
-        r0 *= 1.0 - c0 / c1
-    return r0 if math.isfinite(r0) and r0 > 0 else math.nan
 
 
 # ----------------------------------------------------------------------------- degree
@@ -340,21 +283,24 @@ def choose_degree_motion(holds: Sequence[Hold], points: Sequence[MotionPoints], 
 
     Every n-th bin (by resistance) is left out in turn and predicted from the
     rest and all holds (interpolation, as the calibration is used); per side
-    the degree with the smallest prediction RMS wins, a higher one only if it
-    beats the lower by more than 5 % (as :func:`acquire.commands.calibrate.choose_degree`).
+    the degree with the smallest prediction RMS (bins weighted as in the fit)
+    wins. Unlike a handful of holds (:func:`acquire.commands.calibrate.choose_degree`,
+    where a higher degree must win by 5 %), dozens of bins per side show a
+    higher degree's gain even when the markers' noise dominates the RMS, and
+    its loss where the range is thinly covered.
     """
     scores: dict[int, dict[str, float]] = {}
     for d in range(1, max_degree + 1):
-        sq, cnt = {"positive": 0.0, "negative": 0.0}, {"positive": 0, "negative": 0}
+        sq, cnt = {"positive": 0.0, "negative": 0.0}, {"positive": 0.0, "negative": 0.0}
         try:
             for fold in range(n_folds):
                 cal, _ = fit_calibration(holds, rig=rig, degree=d, motion=_motion_fold(points, fold, n_folds, keep=True))
                 for p in _motion_fold(points, fold, n_folds, keep=False):
-                    for s, (x, k) in enumerate(zip(p.x, p.reference_per_m)):
-                        err = _law(cal, s, x) - k
+                    for s, (x, k, n) in enumerate(zip(p.x, p.reference_per_m, p.frames)):
+                        err, w = _law(cal, s, x) - k, motion_bin_weight(n)
                         for side, sel in (("positive", x > 0), ("negative", x < 0)):
-                            sq[side] += float(np.sum(err[sel] ** 2))
-                            cnt[side] += int(sel.sum())
+                            sq[side] += float(np.sum(w[sel] * err[sel] ** 2))
+                            cnt[side] += float(w[sel].sum())
         except CalibrationError:
             continue
         scores[d] = {side: math.sqrt(sq[side] / cnt[side]) if cnt[side] else math.nan for side in sq}
@@ -363,7 +309,7 @@ def choose_degree_motion(holds: Sequence[Hold], points: Sequence[MotionPoints], 
         tried = [d for d in sorted(scores) if math.isfinite(scores[d][side])]
         best = tried[0] if tried else 2
         for d in tried[1:]:
-            if scores[d][side] < 0.95 * scores[best][side]:
+            if scores[d][side] < scores[best][side]:
                 best = d
         chosen.append(best)
     return (chosen[0], chosen[1]), scores
@@ -471,7 +417,8 @@ def motion_report_lines(report) -> list[str]:
     for m in report.motion_sessions:
         lines.append(
             f"  {Path(m['recording']).name} + {Path(m['markers']).name}: offset {m['offset_s']:+.4f} s, "
-            f"rate {m['rate_ppm']:+.1f} ppm, sharpness {m['sharpness']:.1f}, frames used {m['frames_used']} "
+            f"rate {m['rate_ppm']:+.1f} ppm, sharpness {m['sharpness']:.1f}, "
+            f"pairing lag {1e3 * m.get('pairing_lag_s', 0.0):+.1f} ms, frames used {m['frames_used']} "
             f"of {m['frames']}, marker residual {m['marker_residual_mm']:.3f} mm")
     return lines
 

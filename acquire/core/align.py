@@ -289,14 +289,18 @@ def _refine(t_rec, r_rec, rec_dt, t_cam, r_cam, off0, rate0, dt, drate, max_off,
     t_mid = float(np.median(tc))
     scale = np.array([dt, drate])
     n_grid = int((t_rec[-1] - t_rec[0]) / rec_dt) + 1
-    grid = np.stack([np.interp(t_rec[0] + np.arange(n_grid) * rec_dt, t_rec, r_rec[:, c])
-                     for c in range(r_rec.shape[1])], axis=1)
+    t_grid = t_rec[0] + np.arange(n_grid) * rec_dt
+    grid = np.stack([np.interp(t_grid, t_rec, r_rec[:, c]) for c in range(r_rec.shape[1])], axis=1)
+    # frames lost on the link: no straight line across the gap
+    j = np.clip(np.searchsorted(t_rec, t_grid, side="right"), 1, t_rec.size - 1)
+    grid[np.diff(t_rec)[j - 1] > 2.5 * rec_dt] = np.nan
 
     def corr(x):
         off_mid, rate = x * scale
         u = (off_mid + (1 + rate) * (tc - t_mid) - t_rec[0]) / rec_dt
         inside = (u >= 0) & (u <= n_grid - 1)
-        if (abs(off_mid - (1 + rate) * t_mid) > max_off + dt or abs(rate) > max_ratio + drate
+        # the rate stays within its stated bound (2 % slack): a step-sized margin would double it on short films
+        if (abs(off_mid - (1 + rate) * t_mid) > max_off + dt or abs(rate) > 1.02 * max_ratio + 1e-9
                 or inside.sum() < _MIN_OVERLAP * tc.size):
             return 1.0
         i = np.minimum(u[inside].astype(np.int64), n_grid - 2)

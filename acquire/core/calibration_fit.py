@@ -21,7 +21,18 @@ from acquire.core.calibration import (
 )
 from acquire.rig import Rig
 
-__all__ = ["Hold", "MotionPoints", "fit_calibration"]
+__all__ = ["Hold", "MotionPoints", "fit_calibration", "motion_bin_weight", "MOTION_HALF_FRAMES"]
+
+#: a motion bin of this many camera frames weighs half as much as a hold; a full one (many more frames) like
+#: one hold. A bin's mean carries the markers' noise (about 2 1/m a frame on the demo finger) over its
+#: frames, next to the law's own roughness: inverse-variance weights with that floor
+MOTION_HALF_FRAMES = 10.0
+
+
+def motion_bin_weight(frames, *, half_frames: float = MOTION_HALF_FRAMES) -> np.ndarray:
+    """Weight of motion bins of ``frames`` camera frames each, relative to one hold: ``n / (n + half_frames)``."""
+    n = np.asarray(frames, dtype=float)
+    return n / (n + float(half_frames)) if half_frames > 0 else np.ones_like(n)
 
 
 @dataclass
@@ -176,7 +187,7 @@ class _Points:
     labels: list
 
 
-def _segment_points(k, refs, means, counts, labels, motion, *, motion_weight) -> _Points:
+def _segment_points(k, refs, means, counts, labels, motion, *, motion_weight, half_frames) -> _Points:
     """Hold means and motion bins of segment k as (x, curvature) points, with the flat resistance."""
     use = np.isfinite(refs[:, k]) & np.isfinite(means[:, k])
     kap, rm = refs[use, k], means[use, k]
@@ -197,9 +208,10 @@ def _segment_points(k, refs, means, counts, labels, motion, *, motion_weight) ->
     if not r0 > 0:
         raise CalibrationError(f"segment {k}: flat resistance {r0!r} ohm is not positive")
     xm = np.concatenate(mx) if mx else np.zeros(0)
+    wm = motion_bin_weight(np.concatenate(mf), half_frames=half_frames) if mf else np.zeros(0)
     return _Points(
         x=np.concatenate([(rm - r0) / r0, xm]), kappa=np.concatenate([kap] + mk),
-        weight=np.concatenate([np.ones(kap.size), np.full(xm.size, float(motion_weight))]),
+        weight=np.concatenate([np.ones(kap.size), float(motion_weight) * wm]),
         is_hold=np.arange(kap.size + xm.size) < kap.size, r0=r0, r0_from=r0_from,
         hold_frames=int(counts[use, k].sum()), motion_frames=int(sum(f.sum() for f in mf)),
         labels=[labels[i] for i in np.flatnonzero(use)],
@@ -280,6 +292,7 @@ def fit_calibration(
     min_holds_per_side: int = 2,
     motion: Sequence[MotionPoints] = (),
     motion_weight: float = 1.0,
+    motion_half_frames: float = MOTION_HALF_FRAMES,
 ) -> tuple[Calibration, FitReport]:
     """Fit a calibration from holds and/or filmed motion points (module docstring: model and rules).
 
@@ -303,7 +316,9 @@ def fit_calibration(
     motion : sequence of MotionPoints
         Filmed motion sessions, binned (:class:`MotionPoints`).
     motion_weight : float
-        Weight of one motion bin relative to one hold (each hold mean counts 1).
+        Weight of one full motion bin relative to one hold (each hold mean counts 1).
+    motion_half_frames : float
+        A bin of this many frames weighs half a full one (:func:`motion_bin_weight`; 0: all alike).
 
     Returns
     -------
@@ -327,7 +342,8 @@ def fit_calibration(
         raise CalibrationError("no holds to calibrate from")
     r0, pos_c, neg_c, ranges, seg_reports = np.empty(n_seg), [], [], [], []
     for k in range(n_seg):
-        pts = _segment_points(k, refs, means, counts, labels, motion, motion_weight=motion_weight)
+        pts = _segment_points(k, refs, means, counts, labels, motion, motion_weight=motion_weight,
+                              half_frames=motion_half_frames)
         r0[k] = pts.r0
         sides, warn = _fit_segment(k, pts, deg_pos=deg_pos, deg_neg=deg_neg, on_non_monotone=on_non_monotone,
                                    min_holds_per_side=min_holds_per_side)

@@ -123,10 +123,14 @@ class GraspCycles(_Schedule):
 class FreeMotion(_Schedule):
     """Free bending for a filmed calibration session (made up): moves between seeded curvatures.
 
-    Each row: a move of 0.4 .. 2.0 s (smooth step) to a target curvature, then
-    a pause of 0.2 .. 6 s. Targets alternate in sign most of the time, reach
-    +-``peak_per_m`` now and then, and come back to flat every few moves, so
-    both bend directions are loaded and unloaded from several levels.
+    Each row: a move of 0.5 .. 2.0 s (smooth step) to a target curvature,
+    then a pause. Targets have a random sign, reach +-``peak_per_m`` now and
+    then and spread evenly over the range otherwise, so both bend directions
+    are loaded and unloaded from many levels and the moves sweep the range in
+    between; about every fifth move goes back to flat and rests there
+    1 .. 3 s, as a person filming a calibration would (the flat resistance is
+    then well seen). Other pauses: 0.2 .. 3 s (log-uniform). More frequent or
+    longer flat rests make the film look repetitive to the clock alignment.
     """
 
     _FIELDS = ("d_move", "t_pause", "target")
@@ -139,14 +143,15 @@ class FreeMotion(_Schedule):
     def _row(self, rng) -> list:
         u = rng.uniform
         kind = rng.random()
+        pause = float(np.exp(u(math.log(0.2), math.log(3.0))))
         if kind < 0.2:
-            level = 0.0  # back to flat
-        elif kind < 0.4:
+            level, pause = 0.0, u(1.0, 3.0)  # back to flat, a rest
+        elif kind < 0.3:
             level = 1.0  # full range
         else:
-            level = u(0.15, 0.9)
+            level = u(0.05, 0.95)
         sign = 1.0 if rng.random() < 0.5 else -1.0
-        return [u(0.4, 2.0), float(np.exp(u(math.log(0.2), math.log(6.0)))), sign * level]
+        return [u(0.5, 2.0), pause, sign * level]
 
     def _duration(self, rows):
         return rows[:, 0] + rows[:, 1]
