@@ -21,7 +21,7 @@ import sys
 import time
 
 from acquire.errors import UserError
-from acquire.session.signals import StopSignals
+from acquire.threads.signals import StopSignals
 from acquire.session.status import drift_part, status_line
 
 __all__ = ["run_command", "display_available", "make_app", "exec_app", "live_session"]

@@ -306,7 +306,7 @@ def _check_path_names(args) -> None:
 def _cmd_record(args) -> int:
     from acquire.rig import load_rig
     from acquire.session import Session, load_calibration_for
-    from acquire.session.signals import StopSignals
+    from acquire.threads.signals import StopSignals
     from acquire.session.status import status_line
 
     rig = load_rig(args.rig)

@@ -44,7 +44,7 @@ from firmware_protocol import (
 from acquire.errors import UserError
 from acquire.link.counters import LINK_COUNTER_NAMES
 from acquire.link.frames import Event, EventLog, FrameBlock, FrameRing
-from acquire.session.worker import Worker
+from acquire.threads.worker import Worker
 
 __all__ = ["SerialReader", "PortError", "open_port"]
 

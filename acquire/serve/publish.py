@@ -114,7 +114,7 @@ from typing import Callable
 import numpy as np
 
 from acquire.errors import UserError
-from acquire.session.worker import Worker
+from acquire.threads.worker import Worker
 from acquire.link.frames import FrameBlock, FrameRing
 from acquire.serve.address import _format_address, _is_loopback, check_address, parse_address
 from acquire.serve.messages import FrameEncoder

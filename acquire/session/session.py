@@ -16,7 +16,7 @@ the shape stream and a later ``tapcurve process`` of the file agree.
 
 Threads
 -------
-Every background thread is an :class:`~acquire.session.worker.Worker`; a
+Every background thread is an :class:`~acquire.threads.worker.Worker`; a
 failure in any of them is captured and shown by :meth:`Session.errors` and in
 :meth:`Session.status`. :meth:`Session.start` and :meth:`Session.stop` run on
 the main thread; the control methods (recording, labels, tare, calibration,
@@ -36,7 +36,7 @@ import numpy as np
 from acquire.errors import UserError
 from acquire.link.frames import Event, FrameRing, RingCursor
 from acquire.rig import Rig
-from acquire.session.worker import Worker
+from acquire.threads.worker import Worker
 
 __all__ = ["Session", "load_calibration_for"]
 

@@ -1,6 +1,6 @@
 """A recording played back into a :class:`~acquire.sources.feed.ViewFeed`.
 
-Threads: one worker thread (a :class:`~acquire.session.worker.Worker`) owns
+Threads: one worker thread (a :class:`~acquire.threads.worker.Worker`) owns
 the HDF5 file: it opens it, reads frames in chunks around the play head and
 feeds them through the same numeric chain as a live session. The control
 methods (play, pause, speed, seek, step, calibration, tare) may be called from
@@ -22,7 +22,7 @@ from acquire.errors import UserError
 from acquire.link.frames import FrameBlock
 from acquire.rig import Rig
 from acquire.session.session import load_calibration_for
-from acquire.session.worker import Worker
+from acquire.threads.worker import Worker
 from acquire.sources.feed import DisplayChain, ViewFeed
 
 __all__ = ["ReplaySource"]

@@ -22,7 +22,7 @@ import numpy as np
 
 from acquire.link.clock import ClockFit
 from acquire.errors import UserError
-from acquire.session.worker import Worker
+from acquire.threads.worker import Worker
 from acquire.link.frames import EventLog, FrameRing
 from acquire.store.recording import COUNTER_NAMES, EVENT_TEXT_BYTES, LIBVER, check_label_text, create_derived, pack_xy, create_layout
 

@@ -249,11 +249,11 @@ def _check_out_path(text, option: str, *, symlink: bool) -> None:
 def run_virtual_device(args) -> int:
     """Run until SIGINT, SIGTERM or SIGHUP; print the port path on one line first.
 
-    Runs in the main thread (:class:`acquire.session.signals.StopSignals`
+    Runs in the main thread (:class:`acquire.threads.signals.StopSignals`
     installs the handlers and restores them). Returns 0 after a clean stop,
     1 if the device thread failed.
     """
-    from acquire.session.signals import StopSignals
+    from acquire.threads.signals import StopSignals
 
     dev = build_virtual_finger(args)
     with StopSignals() as stop:

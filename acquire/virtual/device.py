@@ -1,6 +1,6 @@
 """The virtual finger as a device on a real pseudo-terminal, speaking wire protocol v1.
 
-One device thread (a :class:`~acquire.session.worker.Worker`) owns the pty: it
+One device thread (a :class:`~acquire.threads.worker.Worker`) owns the pty: it
 reads host command lines, answers them, and while streaming generates frames
 in chunks (paced by the wall clock times ``time_scale``), encodes them in bulk
 and writes them through a bounded transmit buffer as a microcontroller would
@@ -30,9 +30,10 @@ import numpy as np
 
 import firmware_protocol as fp
 
+from acquire.core.memory_ops import LOOP_MAX as SHORT_CHUNK_FRAMES
 from acquire.errors import UserError
 from acquire.rig import Rig, load_rig
-from acquire.session.worker import Worker
+from acquire.threads.worker import Worker
 from acquire.virtual.camera import Camera, CameraSettings, MarkerWriter
 from acquire.virtual.link import FATE_DROP, FATE_NAMES, FATE_OVERFLOW, PtyLink
 from acquire.virtual.model import SCENARIOS, Faults, FingerModel, check_hold_label
@@ -363,7 +364,8 @@ class VirtualFinger(Worker):
                 self._truth = TruthWriter(self._truth_path, self)
             if self._markers_path is not None:
                 self._markers = MarkerWriter(self._markers_path, self._camera)
-            self._strip = None if self._real_strip is None else self._real_strip.stream(rate_hz=self.boot_rate_hz)
+            self._strip = None if self._real_strip is None else self._real_strip.stream(
+                rate_hz=self.boot_rate_hz, max_chunk_frames=SHORT_CHUNK_FRAMES)
             self._camera_t0 = 0.0  # device time of this boot on the camera's (continuous) time line
             self._boot_device()
             self._open_port()

@@ -168,9 +168,10 @@ class RealStrip:
                      for a, f, p in zip(self._w_amp, self._w_hz, self._w_phase))
         return 1.0 + self.drift_per_hour * t / 3600.0 + wander
 
-    def stream(self, *, rate_hz: float) -> "StripStream":
-        """A stateful stream of this strip for frames at ``rate_hz`` (Hz), at rest until its first frame."""
-        return StripStream(self, rate_hz=rate_hz)
+    def stream(self, *, rate_hz: float, max_chunk_frames: int | None = None) -> "StripStream":
+        """A stateful stream of this strip for frames at ``rate_hz`` (Hz), at rest until its first frame
+        (``max_chunk_frames``: see :class:`StripStream`)."""
+        return StripStream(self, rate_hz=rate_hz, max_chunk_frames=max_chunk_frames)
 
 
 class StripStream:
@@ -178,11 +179,17 @@ class StripStream:
 
     Frames must come in order; :meth:`set_rate` keeps the hysteresis state
     across a rate change (the creep restarts settled at the current value).
+    With ``max_chunk_frames`` (the virtual device's real-time thread) longer
+    runs of frames go through in pieces of at most that many: the memory
+    operators' short-chunk path, which needs no scipy, so the device never
+    waits for scipy's import (a second or more) while it should be sending.
+    The result is the same for any chunking (the operators' rule).
     """
 
-    def __init__(self, strip: RealStrip, *, rate_hz: float):
+    def __init__(self, strip: RealStrip, *, rate_hz: float, max_chunk_frames: int | None = None):
         self.strip = strip
         self.rate_hz = float(rate_hz)
+        self.max_chunk_frames = None if max_chunk_frames is None else max(1, int(max_chunk_frames))
         self._chain = strip.memory.simulator(rate_hz=self.rate_hz)
 
     def set_rate(self, rate_hz: float) -> None:
@@ -197,7 +204,11 @@ class StripStream:
 
     def relative_change(self, u) -> np.ndarray:
         """Static relative change ``u`` (N, S) of the next N frames -> the strip's ``x`` (N, S); new array."""
-        return self._chain.process(np.asarray(u, dtype=np.float64))
+        u = np.asarray(u, dtype=np.float64)
+        step = self.max_chunk_frames
+        if step is None or u.shape[0] <= step:
+            return self._chain.process(u)
+        return np.concatenate([self._chain.process(u[i:i + step]) for i in range(0, u.shape[0], step)])
 
     def segment_ohm(self, t_s, u, r0_ohm) -> np.ndarray:
         """Resistance (N, S), ohm, of the next N frames at device times ``t_s`` from static ``u`` (N, S)."""

@@ -154,3 +154,29 @@ def test_free_scenario_reaches_the_calibrated_range():
     still = np.abs(np.diff(k)) < 1e-9
     runs = np.diff(np.flatnonzero(np.diff(np.concatenate([[0], still.astype(int), [0]]))))[::2] * 0.01
     assert runs.min() < 0.5 and runs.max() > 3.0  # short and long pauses
+
+
+def test_the_device_stream_needs_no_scipy_and_splits_without_changing_the_result():
+    # The device thread must never wait for scipy's import (a second or more) while it should be
+    # sending: its strip stream goes through long runs in short pieces. A fresh interpreter shows
+    # what is imported; the split result equals the whole run's (the operators' chunking rule).
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    code = """
+import sys
+import numpy as np
+from acquire.core.memory_ops import LOOP_MAX
+from acquire.virtual.model import FingerModel
+strip = FingerModel(seed=2).real_strip()
+u = 0.05 * np.sin(np.linspace(0.0, 20.0, 3000))[:, None] * np.ones(6)
+split = strip.stream(rate_hz=1000.0, max_chunk_frames=LOOP_MAX).relative_change(u)
+assert "scipy.signal" not in sys.modules, "scipy.signal imported by the short-chunk path"
+whole = strip.stream(rate_hz=1000.0).relative_change(u)
+np.testing.assert_allclose(split, whole, rtol=0, atol=1e-12)
+print("ok")
+"""
+    root = Path(__file__).resolve().parents[3]
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, cwd=root)
+    assert r.returncode == 0 and r.stdout.strip() == "ok", r.stderr[-2000:]
