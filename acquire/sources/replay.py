@@ -18,12 +18,12 @@ from pathlib import Path
 
 import numpy as np
 
+from acquire.core.calibration import load_for_rig
 from acquire.errors import UserError
 from acquire.link.frames import FrameBlock
 from acquire.rig import Rig
-from acquire.session.session import load_calibration_for
-from acquire.threads.worker import Worker
 from acquire.sources.feed import DisplayChain, ViewFeed
+from acquire.threads.worker import Worker
 
 __all__ = ["ReplaySource"]
 
@@ -209,7 +209,7 @@ class ReplaySource(Worker):
         return notes
 
     def load_calibration(self, path) -> list[str]:
-        return self.set_calibration(load_calibration_for(path, self.rig))
+        return self.set_calibration(load_for_rig(path, self.rig))
 
     def tare(self):
         tared = self.chain.tare()
@@ -277,7 +277,7 @@ class ReplaySource(Worker):
         self._counters = rec.counters()
         cal = self._cal_arg
         if isinstance(cal, (str, Path)):
-            cal = load_calibration_for(cal, self.rig)
+            cal = load_for_rig(cal, self.rig)
         if cal is None and rec.calibration_json is not None:
             from acquire.core.calibration import Calibration
 
