@@ -108,6 +108,7 @@ import selectors
 import socket
 import sys
 import threading
+import time
 from collections import deque
 from typing import Callable
 
@@ -294,8 +295,9 @@ class ShapePublisher(Worker):
         self.start_thread()
 
     def stop(self, *, timeout_s: float = 5.0) -> None:
-        """Stop the thread and close every connection. Safe to call twice."""
-        self.stop_thread(timeout_s=timeout_s)
+        """Stop the thread and close every connection, each at the end of a line. Safe to call twice."""
+        if self.stop_thread(timeout_s=timeout_s):
+            self._finish_inflight(timeout_s=0.5)
         for client in list(self._clients.values()):
             self._drop_client(client)
         if self._selector is not None:
@@ -304,6 +306,22 @@ class ShapePublisher(Worker):
         if self._listener is not None:
             self._listener.close()
             self._listener = None
+
+    def _finish_inflight(self, *, timeout_s: float) -> None:
+        """Send the rest of each client's partly sent output (whole lines), for at most ``timeout_s`` s
+        in all: a client that reads ends its stream at a line end, never inside a message.
+        Owning thread, after the publisher thread has stopped."""
+        deadline = time.monotonic() + timeout_s
+        for client in list(self._clients.values()):
+            while client.inflight and time.monotonic() < deadline:
+                try:
+                    n = client.sock.send(client.inflight, _SEND_FLAGS)
+                except (BlockingIOError, InterruptedError):
+                    time.sleep(0.002)  # the client's window is full: give it a moment
+                    continue
+                except OSError:
+                    break
+                client.inflight = client.inflight[n:]
 
     @property
     def port(self) -> int:
