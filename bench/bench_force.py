@@ -35,7 +35,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from acquire.core.calibration import fit_calibration  # noqa: E402
+from acquire.core.calibration_fit import fit_calibration  # noqa: E402
 from acquire.core.force import ForceModel  # noqa: E402
 from acquire.core.pipeline import Pipeline  # noqa: E402
 from acquire.rig import parse_rig  # noqa: E402

@@ -25,9 +25,14 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from acquire.commands.calibrate_motion import choose_degree_motion  # noqa: E402
 from acquire.core.align import align_clocks  # noqa: E402
-from acquire.core.calibration import fit_calibration  # noqa: E402
+from acquire.core.calibration_fit import fit_calibration  # noqa: E402
 from acquire.core.markers import MarkerTrack, fit_marker_frames, marker_positions  # noqa: E402
-from acquire.core.motion_pairs import bin_motion, paired_resistance, pairing_lag, recording_covers  # noqa: E402
+from acquire.core.motion_pairs import (  # noqa: E402
+    bin_motion,
+    paired_resistance,
+    pairing_lag,
+    recording_covers,
+)
 from acquire.rig import parse_rig  # noqa: E402
 from acquire.virtual.model import FingerModel  # noqa: E402
 

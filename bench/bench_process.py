@@ -35,13 +35,14 @@ from scipy import signal
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
-from acquire.core.calibration import Hold, fit_calibration, parse_label  # noqa: E402
 from acquire.commands.common import SPACING_M
 from acquire.commands.process import process_recording  # noqa: E402
+from acquire.core.calibration_fit import Hold, fit_calibration  # noqa: E402
+from acquire.core.labels import parse_label  # noqa: E402
 from acquire.core.pipeline import process_arrays  # noqa: E402
 from acquire.core.reconstruct import Reconstructor  # noqa: E402
-from acquire.store.recording import LIBVER, create_layout  # noqa: E402
 from acquire.rig import load_rig  # noqa: E402
+from acquire.store.recording import LIBVER, create_layout  # noqa: E402
 from acquire.virtual.model import FingerModel  # noqa: E402
 
 RATE_HZ = 1000.0

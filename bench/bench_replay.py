@@ -37,9 +37,9 @@ def make_recording(path: Path, *, minutes: float, rate_hz: float = 1000.0, chunk
     """Write a recording of the virtual finger's model straight with h5py, in the layout. Returns facts."""
     import h5py
 
-    from acquire.core.calibration import fit_calibration
-    from acquire.store.recording import LIBVER, create_layout
+    from acquire.core.calibration_fit import fit_calibration
     from acquire.rig import load_rig
+    from acquire.store.recording import LIBVER, create_layout
     from acquire.virtual import FingerModel
 
     rig = load_rig(None)

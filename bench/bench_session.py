@@ -38,7 +38,7 @@ import numpy as np  # noqa: E402
 
 
 def _calibration(rig):
-    from acquire.core.calibration import fit_calibration
+    from acquire.core.calibration_fit import fit_calibration
     from acquire.virtual import FingerModel
 
     model = FingerModel(rig=rig, seed=0)

@@ -1,4 +1,5 @@
-"""``tapcurve calibrate``: labelled holds to a calibration file.
+"""Labelled holds to a calibration (``tapcurve calibrate``'s fit from holds; the command is in
+:mod:`acquire.commands.calibrate_command`).
 
 Each labelled interval is mapped to its reference curvature (``flat``,
 ``radius=25mm``, ``curvature=40/m`` or a ``--reference`` table); its steady
@@ -11,66 +12,36 @@ from __future__ import annotations
 
 import math
 import os
-import sys
 import warnings
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence, TextIO
+from typing import Sequence
 
 import numpy as np
 
-from acquire.core.calibration import (
-    check_distinct_recordings,
-    Calibration,
-    CalibrationError,
-    FitReport,
-    Hold,
-    LabelError,
-    fit_calibration,
-    file_sha256,
-    load_reference_table,
-    reference_for,
-    steady_part,
-)
-from acquire.errors import UserError
-from acquire.store.recording import Recording, open_recording
-from acquire.store.outputs import check_output
+from acquire.commands.calibrate_run import CalibrationRun, HoldInfo, fit_warnings
 from acquire.commands.common import (
-    MIN_STEADY_FRAMES, _adc_bits, _warn, check_recording_rig, filtered_intervals, recording_rate_hz,
-    recording_rig, write_text_output,
+    MIN_STEADY_FRAMES,
+    _adc_bits,
+    check_recording_rig,
+    filtered_intervals,
+    recording_rate_hz,
+    recording_rig,
 )
-from acquire.rig import Rig, load_rig
+from acquire.core.calibration import (
+    CalibrationError,
+    check_distinct_recordings,
+    file_sha256,
+)
+from acquire.core.calibration_fit import Hold, fit_calibration
+from acquire.core.holds import reference_for, steady_part
+from acquire.core.labels import LabelError
+from acquire.errors import UserError
+from acquire.rig import Rig
+from acquire.store.recording import Recording, open_recording
 
+# HoldInfo, CalibrationRun and fit_warnings live in acquire.commands.calibrate_run (named here too)
 __all__ = ["HoldInfo", "CalibrationRun", "holds_from_recording", "choose_degree", "fit_warnings", "collect_holds",
-           "calibrate_files", "calibrate_command"]
-
-
-@dataclass
-class HoldInfo:
-    """One labelled interval seen while looking for holds (for the report).
-
-    Attributes
-    ----------
-    file : str
-    label : str
-    t_start_s, t_end_s : float
-        Device time, s.
-    reference_per_m : ndarray or None
-        Per-segment reference curvature, 1/m (None: the label states none).
-    frames, steady_frames : int
-    used : bool
-    note : str
-    """
-
-    file: str
-    label: str
-    t_start_s: float
-    t_end_s: float
-    reference_per_m: np.ndarray | None
-    frames: int = 0
-    steady_frames: int = 0
-    used: bool = False
-    note: str = ""
+           "calibrate_files"]
 
 
 # long on purpose: one pass over a recording's labels, kept together so each refusal names its label
@@ -255,20 +226,6 @@ def choose_degree(
     return (chosen[0], chosen[1]), scores
 
 
-@dataclass
-class CalibrationRun:
-    """What :func:`calibrate_files` did (for the report)."""
-
-    calibration: Calibration
-    report: FitReport
-    degree: tuple[int, int]
-    cv_rms_per_m: dict
-    infos: list[HoldInfo]
-    notes: list[str] = field(default_factory=list)
-    recordings: list[dict] = field(default_factory=list)
-    holds: list[Hold] = field(default_factory=list)
-
-
 def collect_holds(files, *, rig: Rig, table: dict | None = None) -> tuple[list, list, list, list]:
     """Holds, interval infos, provenance and notes of labelled recordings (main thread).
 
@@ -355,7 +312,9 @@ def calibrate_files(
         degree, cv = choose_degree(holds, rig=rig)
     degree = (degree, degree) if np.ndim(degree) == 0 else (int(degree[0]), int(degree[1]))
     cal, report = fit_calibration(holds, rig=rig, degree=degree, recordings=recordings)
-    from acquire.commands.calibrate_memory import add_memory  # the strip's creep and hysteresis, where they help
+    from acquire.commands.calibrate_memory import (
+        add_memory,  # the strip's creep and hysteresis, where they help
+    )
 
     return add_memory(CalibrationRun(
         calibration=cal, report=report, degree=degree, cv_rms_per_m=cv, infos=infos, notes=notes,
@@ -363,124 +322,6 @@ def calibrate_files(
     ), files=files, rig=rig, static=static)
 
 
-
-
-def _format_ref(ref: np.ndarray | None) -> str:
-    if ref is None:
-        return "-"
-    r = ref[np.isfinite(ref)]
-    if r.size and np.all(r == r[0]) and np.isfinite(ref).all():
-        return f"{r[0]:+.2f}"
-    return "[" + " ".join("nan" if not np.isfinite(v) else f"{v:+.1f}" for v in ref) + "]"
-
-
-def _segment_list(segs: list[int]) -> str:
-    if len(segs) == 1:
-        return f"segment {segs[0]}"
-    if segs == list(range(segs[0], segs[-1] + 1)):
-        return f"segments {segs[0]}-{segs[-1]}"
-    return "segments " + ",".join(str(k) for k in segs)
-
-
-def fit_warnings(report: FitReport) -> list[str]:
-    """The fit's warnings, the same text for several segments said once."""
-    by_text: dict[str, list[int]] = {}
-    for seg in report.segments:
-        for w in seg.warnings:
-            by_text.setdefault(w, []).append(seg.segment)
-    return list(report.warnings) + [f"{_segment_list(segs)}: {w}" for w, segs in by_text.items()]
-
-
-def _print_calibration_report(run: CalibrationRun, out: Path, stream: TextIO) -> None:
-    p = lambda *a: print(*a, file=stream)  # noqa: E731
-    p("labelled intervals:")
-    p("  file                      label                     t_start..t_end s   ref 1/m   frames  steady  used")
-    for i in run.infos:
-        span = f"{i.t_start_s:7.2f}..{i.t_end_s:7.2f}"
-        p(
-            f"  {Path(i.file).name[:24]:24s}  {i.label[:24]:24s}  {span:17s}  {_format_ref(i.reference_per_m):>8s}  "
-            f"{i.frames:6d}  {i.steady_frames:6d}  {'yes' if i.used else 'no'}{'  (' + i.note + ')' if i.note else ''}"
-        )
-    dp, dn = run.degree
-    if run.cv_rms_per_m:
-        p(f"polynomial degree up to {dp} (positive bends) / {dn} (negative bends), chosen by "
-          f"leave-one-reference-out prediction RMS, 1/m:")
-        for side in ("positive", "negative"):
-            cells = [
-                f"degree {d}: {e[side]:.3f}" for d, e in run.cv_rms_per_m.items() if math.isfinite(e[side])
-            ]
-            p(f"  {side}: {', '.join(cells) if cells else 'no reference inside the others to predict'}")
-    else:
-        p(f"polynomial degree up to {dp} / {dn} (no reference inside the others' range to cross-validate with)")
-    p("fit per segment (points: holds used; residual: model - reference at the hold means):")
-    p("  segment  points  frames  range covered 1/m    rms residual 1/m  % of range  degree +/-")
-    for sr in run.report.segments:
-        p(
-            f"  {sr.segment:7d}  {sr.n_holds:6d}  {sr.n_frames:6d}  {sr.curvature_min_per_m:+8.2f} .. "
-            f"{sr.curvature_max_per_m:+8.2f}  {sr.rms_residual_per_m:16.3f}  {sr.rms_residual_percent:10.2f}  "
-            f"{sr.degree_positive}/{sr.degree_negative}"
-        )
-    warns = fit_warnings(run.report)
-    p("warnings:" if warns else "warnings: none")
-    for w in warns:
-        p(f"  {w}")
-    p(f"wrote {out}")
-
-
-def calibrate_command(
-    *,
-    files: Sequence[str],
-    rig_path: str,
-    out_path: str,
-    reference_path: str | None = None,
-    force: bool = False,
-    motions: Sequence[tuple[str, str]] = (),
-    static: bool = False,
-    stdout: TextIO | None = None,
-    stderr: TextIO | None = None,
-) -> int:
-    """``tapcurve calibrate [FILE...] --rig R --out CAL.json [--motion REC MARKERS]... [--reference TABLE] [--force]``.
-
-    Prints the fit report to ``stdout`` and warnings to ``stderr``; writes
-    the calibration and its report picture beside it (CAL.svg). Returns 0.
-
-    Raises
-    ------
-    UserError
-        See :func:`calibrate_files`; also an existing output without ``force``.
-    """
-    stdout = stdout or sys.stdout
-    stderr = stderr or sys.stderr
-    out = Path(out_path)
-    rig = load_rig(rig_path)
-    inputs = [Path(f) for f in files] + [Path(p) for m in motions for p in m] + [Path(rig_path)] + (
-        [Path(reference_path)] if reference_path else [])
-    check_output(out, option="--out", force=force, inputs=inputs, what="calibration", can_force=True)
-    from acquire.commands.report_figure import figure_path, report_svg  # the report picture, beside the JSON
-
-    figure = check_output(figure_path(out), option="--out", force=force, inputs=inputs,
-                          what="calibration report picture", can_force=True)
-    table = load_reference_table(reference_path) if reference_path else None
-    from acquire.commands.calibrate_motion import calibrate_with_motion, print_calibration_report
-
-    # holds only: calibrate_with_force (which adds the force model when there are force holds)
-    run = calibrate_with_motion(files, motions, rig=rig, table=table, stdout=stdout, stderr=stderr, static=static)
-    for note in run.notes:
-        _warn(note, stderr)
-    for w in fit_warnings(run.report):
-        _warn(w, stderr)
-    svg = report_svg(run)
-    write_text_output(out, run.calibration.to_json(), replace=force)
-    write_text_output(figure, svg, replace=force)
-    if motions:
-        print_calibration_report(run, out, stdout, figure=figure)
-    else:
-        _print_calibration_report(run, out, stdout)
-        print(f"wrote {figure}", file=stdout)
-    from acquire.commands.calibrate_memory import print_memory_report
-
-    print_memory_report(run, stdout)
-    return 0
 
 
 # ----------------------------------------------------------------------------- tare

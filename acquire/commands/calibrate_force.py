@@ -30,11 +30,24 @@ from typing import Sequence, TextIO
 import numpy as np
 
 from acquire.commands.common import (
-    CHUNK_FRAMES, MIN_STEADY_FRAMES, SPACING_M, _adc_bits, _Rows, _warn, filtered_intervals, recording_rate_hz,
+    CHUNK_FRAMES,
+    MIN_STEADY_FRAMES,
+    SPACING_M,
+    _adc_bits,
+    _Rows,
+    _warn,
+    filtered_intervals,
+    recording_rate_hz,
 )
-from acquire.core.calibration import CalibrationError, reference_for, steady_part
+from acquire.core.calibration import CalibrationError
 from acquire.core.force import DEFAULT_AXIAL_FRICTION, DEFAULT_CURVATURE_NOISE_PER_M
-from acquire.core.force_fit import ForceCalibrationError, ForceFitReport, ForceHold, fit_force_model
+from acquire.core.force_fit import (
+    ForceCalibrationError,
+    ForceFitReport,
+    ForceHold,
+    fit_force_model,
+)
+from acquire.core.holds import reference_for, steady_part
 from acquire.core.labels import LabelError, parse_force_label
 from acquire.core.pipeline import Pipeline
 from acquire.core.reconstruct import Reconstructor
@@ -313,7 +326,7 @@ def format_force_report(run: ForceRun) -> list[str]:
             f"  {Path(i.file).name[:24]:24s}  {i.label[:15]:15s}  {i.force_n:+7.3f}  {i.actuation:9.4g} {unit:4s}"
             f"  {i.steady_frames:6d}  {'yes' if i.used else 'no ':3s}   {i.loo_error_n:8.3g}"
             + (f"  ({i.note})" if i.note else ""))
-    lines.append(f"force model per segment (free curvature = a * actuation; EI: bending stiffness):")
+    lines.append("force model per segment (free curvature = a * actuation; EI: bending stiffness):")
     lines.append(f"  segment  EI N m^2     a 1/m per {unit:6s}  rms residual 1/m  separation")
     for k, ei in enumerate(rep.ei_n_m2):
         lines.append(f"  {k:7d}  {ei:10.4g}  {rep.free_curvature_coeffs[k, 0]:18.4g}  "

@@ -41,7 +41,7 @@ from typing import Sequence, TextIO
 
 import numpy as np
 
-from acquire.commands.calibrate import CalibrationRun, fit_warnings
+from acquire.commands.calibrate_run import CalibrationRun, fit_warnings
 from acquire.commands.common import (
     _adc_bits, _warn, check_recording_rig, filtered_intervals, recording_rate_hz, recording_rig,
 )

@@ -397,7 +397,7 @@ def _cmd_virtual_device(args) -> int:
 
 
 def _cmd_calibrate(args) -> int:
-    from acquire.commands.calibrate import calibrate_command
+    from acquire.commands.calibrate_command import calibrate_command
 
     if not args.files and not args.motion:
         raise UserError("calibrate: give recordings with labelled holds, --motion REC.h5 MARKERS.csv, or both")

@@ -10,19 +10,7 @@ its bounds are :mod:`acquire.core.labels`; :func:`parse_label` and
 Reference table
 ---------------
 Jigs that hold segments at different curvatures are described by a reference
-table, a hand-written TOML file::
-
-    # curvature of each segment in the jig, base segment first, 1/m
-    [references]
-    "jig A" = [40.0, 40.0, 20.0, 0.0, 0.0, 0.0]
-    "jig B" = 25.0                  # one number: every segment
-    "jig C" = ["radius=50mm", "radius=50mm", "flat", "flat", nan, nan]
-
-or a CSV file with one row per label, ``label,seg0,seg1,...`` (a first row whose
-first cell is ``label`` is a header; lines starting with ``#`` are comments).
-Each entry is a number in 1/m or a reference label as above; ``nan`` marks a
-segment the jig does not define (that segment ignores the hold). A table entry
-wins over :func:`parse_label` for the same text.
+table (TOML or CSV; the README and :mod:`acquire.core.holds` give the format).
 
 Model
 -----
@@ -431,7 +419,7 @@ class Calibration:
     # -- use
 
     def evaluate(self, resistance_ohm: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Curvature and out-of-range flags of N frames.
+        """Curvature and out-of-range flags of N frames (any thread; new arrays).
 
         Parameters
         ----------
@@ -448,7 +436,10 @@ class Calibration:
         r = np.asarray(resistance_ohm, dtype=np.float64)
         if r.ndim != 2 or r.shape[1] != self.n_segments:
             raise ValueError(f"expected shape (N, {self.n_segments}), got {r.shape}")
-        x = (r - self.r0_ohm) / self.r0_ohm
+        return self.evaluate_relative((r - self.r0_ohm) / self.r0_ohm)
+
+    def evaluate_relative(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """As :meth:`evaluate`, from ``x = (R - r0) / r0`` (N, S), dimensionless (the memory stage's output); any thread."""
         with np.errstate(invalid="ignore"):
             xp = np.minimum(x, self.x_max)
             xn = np.maximum(x, self.x_min)
@@ -691,6 +682,15 @@ def load_for_rig(path, rig: Rig, *, warn=None):
     return cal
 
 
-# the fit and the hold helpers live in their own modules; their names stay importable from here
-from acquire.core.calibration_fit import Hold, fit_calibration  # noqa: E402
-from acquire.core.holds import load_reference_table, reference_for, steady_part  # noqa: E402
+_MOVED = {"Hold": "calibration_fit", "fit_calibration": "calibration_fit", "load_reference_table": "holds",
+          "reference_for": "holds", "steady_part": "holds"}
+
+
+def __getattr__(name: str):
+    """The fit and the hold helpers live in their own modules (which import this one); their names
+    stay importable from here for scripts written against earlier releases (PEP 562, on first use)."""
+    if name in _MOVED:
+        import importlib
+
+        return getattr(importlib.import_module(f"acquire.core.{_MOVED[name]}"), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -23,7 +23,9 @@ from pathlib import Path
 
 import numpy as np
 
-from acquire.core.calibration import Calibration, Hold, fit_calibration, steady_part
+from acquire.core.calibration import Calibration
+from acquire.core.calibration_fit import Hold, fit_calibration
+from acquire.core.holds import steady_part
 from acquire.core.labels import parse_hold_label
 from acquire.core.readout import DividerReadout
 from acquire.rig import Rig, load_rig

@@ -6,7 +6,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from acquire.core.calibration import fit_calibration
+from acquire.core.calibration_fit import fit_calibration
 from acquire.rig import load_rig
 from acquire.virtual import FingerModel
 

@@ -79,7 +79,7 @@ def sha(p: Path) -> str:
 
 def make_calibration(path: Path) -> Path:
     """A calibration of the demo rig, fitted by the project's own fit to holds of a linear made-up sensor."""
-    from acquire.core.calibration import fit_calibration
+    from acquire.core.calibration_fit import fit_calibration
 
     rig = load_rig(None)
     r0 = np.array([7800.0, 7600.0, 7900.0, 8000.0, 7900.0, 7500.0])

@@ -251,7 +251,8 @@ def test_force_holds_read_through_the_memory_model(calibrated, holds_file, rig):
     import dataclasses
 
     from acquire.commands.calibrate_force import force_holds_from_recording
-    from acquire.core.calibration import Calibration, steady_part
+    from acquire.core.calibration import Calibration
+    from acquire.core.holds import steady_part
     from acquire.core.memory import SegmentMemory, StripMemory
     from acquire.core.pipeline import Pipeline
     from acquire.store.recording import open_recording

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from acquire.core.calibration import fit_calibration
+from acquire.core.calibration_fit import fit_calibration
 from acquire.core.force import ForceModel
 from acquire.core.pipeline import process_arrays
 from acquire.link.frames import FrameBlock, FrameRing

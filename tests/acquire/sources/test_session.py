@@ -9,10 +9,10 @@ import h5py
 import numpy as np
 import pytest
 
-from acquire.core.calibration import fit_calibration
+from acquire.core.calibration_fit import fit_calibration
+from acquire.core.reconstruct import Reconstructor
 from acquire.errors import UserError
 from acquire.link.frames import FrameBlock
-from acquire.core.reconstruct import Reconstructor
 from acquire.rig import load_rig
 from acquire.session import Session
 from acquire.sources.feed import ViewFeed

@@ -20,7 +20,7 @@ import h5py
 import numpy as np
 import pytest
 
-from acquire.core.calibration import fit_calibration
+from acquire.core.calibration_fit import fit_calibration
 from acquire.core.force import ForceModel
 from acquire.core.health import FAULT, assess_health
 from acquire.core.pipeline import Pipeline, process_arrays
