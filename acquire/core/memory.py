@@ -91,7 +91,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from acquire.core.memory_ops import LOOP_MAX as _LOOP_MAX
-from acquire.core.memory_ops import block_weights, first_order_coefs, play_small, plays, relax_small
+from acquire.core.memory_ops import PlayWork, block_weights, first_order_coefs, play_small, plays, relax_small
 
 __all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMemory", "StripMemory", "pi_inverse_parameters"]
 
@@ -99,6 +99,16 @@ __all__ = ["PlayOperator", "PIOperator", "Relaxation", "MemoryChain", "SegmentMe
 def _signal():  # scipy.signal (about 1 s to import): loaded with the first long chunk, never at start-up
     from scipy import signal
     return signal
+
+
+def _lfilter_one(b: np.ndarray, a: np.ndarray, x: np.ndarray, zi: np.ndarray):
+    """``lfilter(b, a, x, zi=zi)`` of one segment; a short chunk without scipy (the virtual
+    finger's first frames must not wait for scipy's import on its device thread)."""
+    if x.shape[0] <= _LOOP_MAX:
+        b2, a2 = b[:, None], a[:, None]
+        y, z = relax_small(x[:, None], zi[:, None], b2, a2, coefs=first_order_coefs(b2, a2))
+        return y[:, 0], z[:, 0]
+    return _signal().lfilter(b, a, x, zi=zi)
 
 
 def _lfilter_zi(b: np.ndarray, a: np.ndarray) -> np.ndarray:
@@ -221,7 +231,14 @@ class PlayOperator(_Stage):
         self.thresholds = r
         r.setflags(write=False)
         self.n_segments = r.shape[0]
+        self._work = PlayWork(r)  # the small path's scratch: this operator's thread only
         self.reset()
+
+    def __getstate__(self) -> dict:  # a copy gets its own scratch (its rows are views of its arrays)
+        return {**self.__dict__, "_work": None}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state, _work=PlayWork(state["thresholds"]))
 
     def _run(self, u: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
         """Play outputs (N, S, K), or with ``weights`` (S, K) their weighted sums (N, S)."""
@@ -230,7 +247,8 @@ class PlayOperator(_Stage):
             return np.empty((0,) + (self.thresholds.shape if weights is None else (self.n_segments,)))
         y0, started = self._y, self._started
         if started and n <= _LOOP_MAX:  # the live path: a few frames
-            out, self._y = play_small(u, self.thresholds, y0, weights=None if weights is None else self._block_w)
+            out, self._y = play_small(u, self.thresholds, y0, weights=None if weights is None else self._block_w,
+                                      work=self._work)
             return out
         if not started:  # start at rest at the first valid input
             y0 = np.where(np.isnan(y0), _first_valid(u)[:, None], y0)
@@ -329,6 +347,9 @@ class PIOperator(PlayOperator):
         return PIOperator(*pi_inverse_parameters(self.thresholds, self.weights))
 
     def _run(self, u: np.ndarray) -> np.ndarray:
+        if self._started and 0 < u.shape[0] <= _LOOP_MAX:  # the live path, without the general checks
+            out, self._y = play_small(u, self.thresholds, self._y, weights=self._block_w, work=self._work)
+            return out
         return PlayOperator._run(self, u, self.weights)
 
 
@@ -404,12 +425,15 @@ class Relaxation(_Stage):
 
     def _run(self, x: np.ndarray) -> np.ndarray:
         n = x.shape[0]
+        if self._started and 0 < n <= _LOOP_MAX and self._groups:  # fewer calls than lfilter per segment group
+            if self._creep_cols is None:  # every segment creeps (the usual case)
+                out, self._zi = relax_small(x, self._zi, self._b, self._a, coefs=self._coefs)
+                return out
+            return self._run_small(x)
         if not self._groups or n == 0:
             return x.copy()
         if not self._started:
             return self._run_starting(x)
-        if n <= _LOOP_MAX:  # fewer calls than lfilter per segment group
-            return self._run_small(x)
         out = x.copy()
         for b, a, cols in self._groups:
             out[:, cols], self._zi[:, cols] = _signal().lfilter(b, a, x[:, cols], axis=0,
@@ -441,7 +465,7 @@ class Relaxation(_Stage):
                     k = int(np.argmax(ok))
                     zi = self._zi_unit[:, s] * xs[k]
                     out[:k, s] = np.nan
-                out[k:, s], self._zi[:, s] = _signal().lfilter(b, a, xs[k:], zi=zi)
+                out[k:, s], self._zi[:, s] = _lfilter_one(b, a, xs[k:], zi)
         self._started = not np.isnan(self._zi).any()
         return out
 

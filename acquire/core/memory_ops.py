@@ -19,7 +19,8 @@ segments at once into preallocated arrays:
 :func:`play_small`
     the play recursion ``y_n = min(max(y_{n-1}, u_n - r), u_n + r)``,
     vectorised over segments and thresholds: one ``clip`` per frame (exact:
-    it only selects values); a PI's weighted sum is one matrix product.
+    it only selects values) on the flat (S K) row of all plays; a PI's
+    weighted sum is one matrix product.
 
 Long chunks of plays go through an associative prefix scan (:func:`plays`;
 the algorithm is described in :mod:`acquire.core.memory`).
@@ -32,7 +33,7 @@ from __future__ import annotations
 import numpy as np
 from numpy._core import umath
 
-__all__ = ["LOOP_MAX", "block_weights", "first_order_coefs", "play_small", "plays", "relax_small"]
+__all__ = ["LOOP_MAX", "block_weights", "first_order_coefs", "PlayWork", "play_small", "plays", "relax_small"]
 
 _clip = umath.clip  # the clip ufunc itself: np.clip adds a Python wrapper per call
 LOOP_MAX = 24  # frames: up to this a loop over frames beats the scan and lfilter (per-call overhead)
@@ -50,15 +51,15 @@ def relax_small(x: np.ndarray, zi: np.ndarray, b: np.ndarray, a: np.ndarray, *, 
     """
     order = b.shape[0] - 1
     if order == 1 and coefs is not None:
-        cols, zs = x.T.tolist(), zi[0].tolist()
-        for s, col in enumerate(cols):
-            z, (b0, b1, a1) = zs[s], coefs[s]
-            for i, xn in enumerate(col):
+        ys, ends = [], []  # one flat list: numpy reads it faster than nested lists
+        put = ys.append
+        for col, z, (b0, b1, a1) in zip(x.T.tolist(), zi[0].tolist(), coefs):
+            for xn in col:
                 yn = z + b0 * xn  # scipy's order: *yn = *Z + *b * *xn; *Z = *xn * b1 - *yn * a1
                 z = xn * b1 - yn * a1
-                col[i] = yn
-            zs[s] = z
-        return np.array(cols).T.copy(), np.array([zs])
+                put(yn)
+            ends.append(z)
+        return np.fromiter(ys, np.float64, len(ys)).reshape(x.shape[1], x.shape[0]).T, np.array([ends])
     xb = x[:, None, :] * b  # (n, M + 1, S): every product x_n b_k of the chunk
     y = np.empty_like(x)
     z = zi.copy()
@@ -78,25 +79,45 @@ def first_order_coefs(b: np.ndarray, a: np.ndarray):
     return list(zip(b[0].tolist(), b[1].tolist(), a[1].tolist()))
 
 
-def play_small(u: np.ndarray, r: np.ndarray, y0: np.ndarray, *, weights: np.ndarray | None):
+class PlayWork:
+    """Scratch arrays of :func:`play_small` for thresholds ``r`` (S, K) and chunks of up to ``n_max``
+    frames, made once per operator and used by its thread only: the column of each play (S K,), the
+    signed thresholds ``(-r, +r)`` (2, 1, S K), the clamp bounds and plays of a chunk, and views of
+    their rows made once (a view made per frame costs about as much as the frame's ``clip``)."""
+
+    def __init__(self, r: np.ndarray, n_max: int = LOOP_MAX):
+        s, k = r.shape
+        self.cols = np.repeat(np.arange(s), k)
+        self.signed = np.stack([-r, r]).reshape(2, 1, s * k)
+        self.bounds = np.empty((2, n_max, s * k))
+        self.plays = np.empty((n_max, s * k))
+        self.lo_rows, self.hi_rows, self.out_rows = list(self.bounds[0]), list(self.bounds[1]), list(self.plays)
+
+
+def play_small(u: np.ndarray, r: np.ndarray, y0: np.ndarray, *, weights: np.ndarray | None,
+               work: PlayWork | None = None):
     """Plays of a short chunk ``u`` (n, S) with thresholds ``r`` (S, K) from state ``y0`` (S, K).
 
     ``weights``: None, or the (S K, S) block-diagonal matrix of the weights (:func:`block_weights`).
-    Returns (plays (n, S, K), or their weighted sums (n, S) with ``weights``; end state (S, K)),
-    new arrays; no NaN in ``u`` or ``y0`` (the caller fills gaps). The plays are the recursion's
-    own numbers; the sums equal the long path's to rounding (summed in another order).
+    ``work``: :class:`PlayWork` of ``r`` for at least n frames (made here when None); its arrays
+    are overwritten. Returns (plays (n, S, K), or their weighted sums (n, S) with ``weights``; end
+    state (S, K)), new arrays; no NaN in ``u`` or ``y0`` (the caller fills gaps). The plays are the
+    recursion's own numbers; the sums equal the long path's to rounding (summed in another order).
     """
-    uu = u[:, :, None]
-    lo, hi = uu - r, uu + r
-    out = np.empty_like(lo)
-    y = y0
-    for lo_n, hi_n, o in zip(lo, hi, out):
-        _clip(y, lo_n, hi_n, out=o)
+    n = u.shape[0]
+    if work is None or n > len(work.out_rows):
+        work = PlayWork(r, n)
+    # both clamp bounds of every frame and play in one call, on flat (S K) rows so that numpy's
+    # inner loops run over all plays at once; u + (-r) is u - r exactly (IEEE 754)
+    np.add(u.take(work.cols, 1), work.signed, out=work.bounds[:, :n])
+    y = y0.reshape(-1)
+    for lo_n, hi_n, o in zip(work.lo_rows[:n], work.hi_rows[:n], work.out_rows[:n]):
+        _clip(y, lo_n, hi_n, o)  # out positionally: a keyword costs a little per call
         y = o
-    end = y.copy()
+    end = y.reshape(r.shape).copy()
     if weights is None:
-        return out, end
-    return out.reshape(u.shape[0], -1) @ weights, end
+        return work.plays[:n].reshape((n,) + r.shape).copy(), end
+    return np.dot(work.plays[:n], weights), end
 
 
 def block_weights(weights: np.ndarray) -> np.ndarray:

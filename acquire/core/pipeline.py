@@ -242,11 +242,14 @@ class Pipeline:
         with self._run_lock:
             cal = self.calibration  # one calibration per block
             resistance, check, to_filter = self._read(codes)
-            filtered, static = self._stateful(to_filter, restarts, cal)
-            return self._finish(np.asarray(codes), resistance, filtered, static, check, cal)
+            filtered, static_x = self._stateful(to_filter, restarts, cal)
+            return self._finish(np.asarray(codes), resistance, filtered, static_x, check, cal)
 
     def _stateful(self, x: np.ndarray, restarts, cal) -> tuple[np.ndarray, np.ndarray | None]:
-        """Filters, then the strip's memory: both restart at ``restarts`` (offsets in ``x``)."""
+        """Filters, then the strip's memory: both restart at ``restarts`` (offsets in ``x``).
+
+        Returns the filtered signals and the memory stage's static relative change (or None).
+        """
         cuts = sorted({int(r) for r in restarts if 0 < int(r) < x.shape[0]})
         if any(int(r) == 0 for r in restarts):
             self.filters.reset()
@@ -276,13 +279,18 @@ class Pipeline:
             to_filter = np.column_stack([to_filter, self.force.actuation_value(codes)])
         return resistance, check, to_filter
 
-    def _finish(self, codes, resistance, filtered, static, check, cal) -> Processed:
+    def _finish(self, codes, resistance, filtered, static_x, check, cal) -> Processed:
+        """The stateless rest of a block; ``static_x``: the memory stage's static relative change, or None."""
         actuation = self.force.actuation_value(codes)
         act_filtered = filtered[:, self.n_segments] if actuation is not None else None
         filtered = np.ascontiguousarray(filtered[:, :self.n_segments])
-        curvature = xy = outside = force = None
+        curvature = xy = outside = force = static = None
+        if cal is not None and static_x is not None:  # the law on the compensated x itself, no round trip
+            k, outside = cal.evaluate_relative(static_x)
+            static = cal.r0_ohm * (1.0 + static_x)
+        elif cal is not None:
+            k, outside = cal.evaluate(filtered)
         if cal is not None:
-            k, outside = cal.evaluate(filtered if static is None else static)
             curvature = k.astype(np.float32)
             need_shape = self.with_shape or cal.force_model is not None
             xy = self.reconstructor.shape_xy(k, dtype=np.float32) if need_shape else None

@@ -6,10 +6,12 @@ Both follow the calibration in force (a calibration file may carry a
 publish and process compute them the same way.
 
 :class:`MemoryStage`
-    filtered resistance -> the static (memory-free) resistance the
+    filtered resistance -> the static (memory-free) relative change the
     calibration's monotone law expects: x = R / r0 - 1 goes through the
     calibration's :class:`~acquire.core.memory.StripMemory` compensator
-    (causal, with state, chunk-invariant) and back to ohm.
+    (causal, with state, chunk-invariant); the pipeline evaluates the law on
+    it directly (:meth:`~acquire.core.calibration.Calibration.evaluate_relative`)
+    and reports it in ohm as ``r0 (1 + x)``.
 :class:`ForceStage`
     curvature, shape and actuation -> the force at the sensor's far end
     (:class:`~acquire.core.force.ForceEstimator`), and the actuation input
@@ -39,7 +41,8 @@ class MemoryStage:
             self._compensator.reset()
 
     def process(self, filtered_ohm: np.ndarray, calibration) -> np.ndarray | None:
-        """The static resistance (N, S) ohm, or None when the calibration has no memory (new array)."""
+        """The static relative change ``R_static / r0 - 1`` (N, S), dimensionless, of the filtered
+        resistance (N, S) ohm; None when the calibration has no memory. New array, owned by the caller."""
         model = None if calibration is None else calibration.memory_model
         if model is None:
             self._key = self._compensator = None
@@ -47,9 +50,9 @@ class MemoryStage:
         if self._key is not calibration.memory:  # a new memory model; a tare keeps the same one
             self._key = calibration.memory
             self._compensator = model.compensator(rate_hz=self.rate_hz)
-        r0 = np.asarray(calibration.r0_ohm)
-        x = filtered_ohm / r0 - 1.0
-        return r0 * (1.0 + self._compensator.process(x))
+        x = filtered_ohm / calibration.r0_ohm
+        x -= 1.0  # in place: the same numbers as R / r0 - 1, one array fewer
+        return self._compensator.process(x)
 
 
 class ForceStage:
