@@ -31,7 +31,8 @@ from acquire.commands.calibrate import calibrate_files, holds_from_recording
 from acquire.commands.calibrate_motion import calibrate_with_motion
 from acquire.commands.calibrate_memory import (MotionSeries, add_memory, fit_strip_memory, holds_series_from_files,
                                                invert_static_law, memory_report_lines)
-from acquire.core.calibration import Calibration, fit_calibration
+from acquire.core.calibration import Calibration
+from acquire.core.calibration_fit import fit_calibration
 from acquire.core.memory import SegmentMemory, StripMemory
 from acquire.core.memory_fit import hysteresis_band
 from acquire.core.pipeline import Pipeline
@@ -265,8 +266,10 @@ def test_calibrate_command_writes_the_memory(files):
 # --- end to end on the virtual finger's real strip ------------------------------------------------
 
 #: mean tip error with the memory model, calibrated from holds plus one 40 s filmed free motion and
-#: measured on a grasp (bench/bench_memory.py): 1.9 % (1.1 % on an earlier free-motion course); the
-#: issue's target is 1.5 %, not met on every course yet. This limit guards what is reached.
+#: measured on a grasp (bench/bench_memory.py): 1.8 % (1.1 % on an earlier free-motion course); the
+#: issue's target is 1.5 %, not met on this course yet. The figure moves by tenths with the film's lag the
+#: fit picks (1.8 % at +34 ms, 2.3 % at +15 ms, 2.4 % at +50 ms), hence the margin. This limit guards
+#: what is reached.
 TIP_LIMIT_PERCENT = 2.5
 
 
@@ -297,3 +300,66 @@ def test_real_strip_holds_plus_film_end_to_end(tmp_path):
     assert all(s.kept for s in run.memory_report.segments)
     assert memory_pct <= TIP_LIMIT_PERCENT
     assert memory_pct < 0.4 * static_pct
+
+
+# --- a film alone (no holds): memory kept only where the strip has it ----------------------------------
+
+
+def _film_alone(folder, rig, *, seed, strip, gap_s=None, seconds=30.0):
+    """A filmed free motion of the virtual finger (in process, the codes its device sends), recorded by the
+    project's recorder, optionally with frames lost on the link over ``gap_s`` = (start, end) s; then
+    ``calibrate --motion`` without holds. Returns the run."""
+    from acquire.virtual.camera import Camera, CameraSettings, write_marker_csv
+    from acquire.virtual.model import FingerModel
+
+    free = FingerModel(rig=rig, seed=seed, scenario="free")
+    seq = np.arange(int(seconds * RATE))
+    stream = free.real_strip(strip).stream(rate_hz=RATE) if strip.real else None
+    codes = free.codes(seq / RATE, frame_index=seq, strip=stream)
+    keep = np.ones(seq.size, bool)
+    if gap_s is not None:
+        keep[int(gap_s[0] * RATE):int(gap_s[1] * RATE)] = False  # lost on the link: seq and time jump
+    rec, csv = folder / f"free_{seed}_{strip.mode}.h5", folder / f"free_{seed}_{strip.mode}.csv"
+    ring = FrameRing(capacity_frames=seq.size + 10, n_channels=rig.n_channels)
+    hello = {"protocol": 1, "firmware": "test", "adc_bits": BITS, "channels": rig.n_channels, "rate_hz": RATE}
+    recorder = Recorder(path=rec, ring=ring, rig_toml=rig.text, device_hello=json.dumps(hello),
+                        channel_names=rig.channels, n_segments=rig.n_segments)
+    recorder.start()
+    t = seq[keep] / RATE
+    ring.push(FrameBlock(codes=codes[keep], seq=seq[keep].astype(np.int64), t_device_s=t, t_host_s=t,
+                         status=np.zeros(t.size, dtype=np.uint8)))
+    recorder.stop()
+    assert recorder.error is None
+    camera = CameraSettings()
+    _, t_cam = Camera(camera, rig=rig).frames_between(0.0, float(seq[-1] / RATE))
+    write_marker_csv(csv, free, t_cam, settings=camera)
+    quiet = io.StringIO()
+    return calibrate_with_motion([], [(rec, csv)], rig=rig, stdout=quiet, stderr=quiet)
+
+
+@pytest.mark.slow  # about 10 s of CPU per case
+@pytest.mark.parametrize("seed, gap_s", [(1, None), (8, None), (8, (12.0, 12.6))])
+def test_ideal_strip_filmed_alone_keeps_no_memory(tmp_path, seed, gap_s):
+    # The virtual finger's ideal strip is the static law alone (acquire/virtual/strip.py, mode "ideal"): it has
+    # no memory by construction, so a memory model can only fit the film's noise and lag. Held out honestly
+    # (both arms fitted to the same first 75 %), it must not win by the 5 % margin (common practice, no source).
+    # Seed 8 kept a hysteresis model (bands 1.1-1.4 %) before both arms were fitted and aligned each on their
+    # own; seed 1 fits the largest spurious bands (3-4.5 %). One case also loses frames on the link (a gap the
+    # recording shows as a jump in seq and time).
+    run = _film_alone(tmp_path, _bench_memory().filmed_rig(), seed=seed, strip=StripSettings(mode="ideal"),
+                      gap_s=gap_s)
+    assert run.memory_report is not None
+    assert not any(s.kept for s in run.memory_report.segments), run.memory_report.text()
+    assert run.calibration.memory is None
+
+
+@pytest.mark.slow  # about 15 s of CPU
+def test_real_strip_filmed_alone_keeps_memory(tmp_path):
+    # The virtual finger's default strip creeps and has hysteresis (4 % each, made-up magnitudes): the same
+    # honest held-out comparison keeps memory in every segment, with a lower held-out error in each.
+    run = _film_alone(tmp_path, _bench_memory().filmed_rig(), seed=0, strip=StripSettings(mode="real"),
+                      gap_s=(12.0, 12.6))
+    segs = run.memory_report.segments
+    assert all(s.kept for s in segs), run.memory_report.text()
+    assert all(s.heldout_rms_memory_per_m < s.heldout_rms_static_per_m for s in segs)
+    assert run.calibration.memory is not None
