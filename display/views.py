@@ -12,6 +12,7 @@ import numpy as np
 import pyqtgraph as pg
 from PyQt5 import QtCore, QtGui, QtWidgets
 
+from .plot_cost import cache_axes, opaque_view, peak_envelope
 from .theme import COLOURS, series_colour
 
 __all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline", "RedrawGovernor", "redraw_ladder",
@@ -82,8 +83,9 @@ class ShapeView(pg.PlotWidget):
 
     Attributes
     ----------
-    sensor_curve, tip_curve : pg.PlotDataItem
-        The sensor from tap 0 to its far end, and the unsensed tip beyond.
+    sensor_curve, tip_curve : pg.PlotCurveItem
+        The sensor from tap 0 to its far end, and the unsensed tip beyond (bare curve
+        items: a PlotDataItem's bookkeeping per ``setData`` costs more than the curve).
     """
 
     def __init__(self, *, rig, reconstructor, parent=None):
@@ -101,7 +103,9 @@ class ShapeView(pg.PlotWidget):
         plot.setLabel("left", "y", units="m")
         plot.setMenuEnabled(False)
         plot.hideButtons()
+        cache_axes(plot)
         self.setBackground(COLOURS["background"])
+        opaque_view(self)
 
         # static: the clamp at the base, a faint straight reference
         reach = rig.sensor_length_m + rig.tip_length_m
@@ -123,9 +127,9 @@ class ShapeView(pg.PlotWidget):
         plot.addItem(self.body_item)
         self.trail = pg.ScatterPlotItem(size=4, pen=None, antialias=True)
         plot.addItem(self.trail)
-        self.tip_curve = pg.PlotDataItem(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
+        self.tip_curve = pg.PlotCurveItem(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
         plot.addItem(self.tip_curve)
-        self.sensor_curve = pg.PlotDataItem(pen=_pen(COLOURS["sensor"], 3), antialias=True)
+        self.sensor_curve = pg.PlotCurveItem(pen=_pen(COLOURS["sensor"], 3), antialias=True)
         plot.addItem(self.sensor_curve)
         self.taps = pg.ScatterPlotItem(
             size=7, pen=_pen(COLOURS["tap_edge"], 1), brush=pg.mkBrush(COLOURS["tap"]), antialias=True
@@ -134,7 +138,7 @@ class ShapeView(pg.PlotWidget):
         # tap numbers as scatter symbols (cached pixmaps): far cheaper per frame than text items
         self.tap_labels = pg.ScatterPlotItem(size=11, pen=None, brush=pg.mkBrush(COLOURS["muted"]), antialias=True)
         plot.addItem(self.tap_labels)
-        self.force_arrow = pg.PlotDataItem(pen=_pen(COLOURS["caution"], 2.5), connect="pairs", antialias=True)
+        self.force_arrow = pg.PlotCurveItem(pen=_pen(COLOURS["caution"], 2.5), connect="pairs", antialias=True)
         plot.addItem(self.force_arrow)
         # the arrow's scale and value, stated in the view (a label over it, like the message)
         self.force_label = QtWidgets.QLabel("", self)
@@ -142,6 +146,7 @@ class ShapeView(pg.PlotWidget):
                                        "padding: 3px; font-size: 11px;")
         self.force_label.setVisible(False)
         self.force_scale_m_per_n = None
+        self._arrow_shown = False
         self._label_symbols = [_text_symbol(str(j)) for j in range(len(self.tap_index))]
         self._trail_brushes: dict[int, list] = {}
         self.message = ""
@@ -201,7 +206,9 @@ class ShapeView(pg.PlotWidget):
     def show_force(self, tip_xy_m, force_n, *, scale_m_per_n: float | None) -> None:
         """Draw the force as an arrow at the tip, ``scale_m_per_n`` long per newton; None hides it."""
         if force_n is None or scale_m_per_n is None or tip_xy_m is None:
-            self.force_arrow.setData([], [])
+            if self._arrow_shown:  # an empty setData still costs bounds and a repaint
+                self.force_arrow.setData([], [])
+                self._arrow_shown = False
             self.force_label.setVisible(False)
             return
         mag = float(np.hypot(*force_n))
@@ -210,8 +217,10 @@ class ShapeView(pg.PlotWidget):
         if math.isfinite(mag) and np.isfinite(tip_xy_m).all():
             pts = force_arrow_xy(tip_xy_m, force_n, scale_m_per_n=scale_m_per_n)
             self.force_arrow.setData(pts[:, 0], pts[:, 1])
+            self._arrow_shown = True
         else:
             self.force_arrow.setData([], [])
+            self._arrow_shown = False
         if text != self.force_label.text():
             self.force_label.setText(text)
             self._place_force_label()
@@ -274,7 +283,9 @@ class SegmentBars(pg.PlotWidget):
         ticks = [(k, f"seg {k}") for k in range(self.n)]
         plot.getAxis("left").setTicks([ticks])
         plot.setYRange(-0.6, self.n - 0.4, padding=0)
+        cache_axes(plot)
         self.setBackground(COLOURS["background"])
+        opaque_view(self)
         self.bars = pg.BarGraphItem(x0=np.zeros(self.n), y=np.arange(self.n), height=0.62,
                                     width=np.zeros(self.n), brush=COLOURS["bend_pos"], pen=None)
         plot.addItem(self.bars)
@@ -321,6 +332,13 @@ class SegmentBars(pg.PlotWidget):
         self.bars.setOpts(width=v, brushes=brushes)
 
 
+def _curve(plot, colour, name: str, *, skip_finite_check: bool = False) -> pg.PlotCurveItem:
+    """A trace curve on ``plot``, 1 px, in its legend when it has one (GUI thread)."""
+    curve = pg.PlotCurveItem(pen=_pen(colour, 1), name=name, skipFiniteCheck=skip_finite_check)
+    plot.addItem(curve)
+    return curve
+
+
 class TraceView(pg.GraphicsLayoutWidget):
     """Rolling traces: channels (ADC codes or segment resistance) above, segment curvature below.
 
@@ -330,6 +348,7 @@ class TraceView(pg.GraphicsLayoutWidget):
     def __init__(self, *, channel_names, n_segments: int, window_s: float, adc_bits: int, parent=None):
         super().__init__(parent=parent)
         self.setBackground(COLOURS["background"])
+        opaque_view(self)
         self.channel_names = list(channel_names)
         self.n_seg = int(n_segments)
         self.window_s = float(window_s)
@@ -344,6 +363,7 @@ class TraceView(pg.GraphicsLayoutWidget):
             p.setMouseEnabled(x=False, y=True)
             p.setClipToView(False)
             p.getAxis("left").setWidth(72)  # both plots' time axes line up
+            cache_axes(p)
         self.bottom.setXLink(self.top)
         self.bottom.setLabel("bottom", "time before the newest frame", units="s")
         self.bottom.setLabel("left", "curvature", units="1/m")
@@ -351,14 +371,11 @@ class TraceView(pg.GraphicsLayoutWidget):
                                              labelTextSize="7pt")
         self.bottom_legend = self.bottom.addLegend(offset=(4, 2), labelTextColor=COLOURS["muted"], colCount=8,
                                                    labelTextSize="7pt")
-        self.code_curves = [
-            self.top.plot(pen=_pen(series_colour(k), 1), name=f"{k}:{name}", skipFiniteCheck=True)
-            for k, name in enumerate(self.channel_names)
-        ]
-        self.res_curves = [self.top.plot(pen=_pen(series_colour(k), 1), name=f"seg {k}") for k in range(self.n_seg)]
-        self.curv_curves = [
-            self.bottom.plot(pen=_pen(series_colour(k), 1), name=f"seg {k}") for k in range(self.n_seg)
-        ]
+        # bare curve items: a PlotDataItem's extra bookkeeping per setData is a third of a trace redraw
+        self.code_curves = [_curve(self.top, series_colour(k), f"{k}:{name}", skip_finite_check=True)
+                            for k, name in enumerate(self.channel_names)]
+        self.res_curves = [_curve(self.top, series_colour(k), f"seg {k}") for k in range(self.n_seg)]
+        self.curv_curves = [_curve(self.bottom, series_colour(k), f"seg {k}") for k in range(self.n_seg)]
         self.no_cal_text = pg.TextItem("no calibration: curvature unavailable", color=COLOURS["caution"],
                                        anchor=(0.5, 0.5))
         self.bottom.addItem(self.no_cal_text, ignoreBounds=True)
@@ -381,6 +398,7 @@ class TraceView(pg.GraphicsLayoutWidget):
         plot.setLabel("left", label, units=units)
         plot.setXLink(self.top)
         plot.setMaximumHeight(110)
+        cache_axes(plot)
         return plot, plot.plot(pen=_pen(colour, 1.2))
 
     def set_extras(self, *, force: bool, actuation_unit: str | None) -> None:
@@ -433,27 +451,34 @@ class TraceView(pg.GraphicsLayoutWidget):
             self.bottom_legend.setVisible(True)
         self.calibrated = calibrated
 
+    def buckets_per_point(self, n_buckets: int) -> int:
+        """Feed buckets merged into one drawn min/max pair: about one pair per pixel column of the plots."""
+        width_px = max(1.0, float(self.top.getViewBox().width()))
+        return max(1, int(math.ceil(n_buckets / width_px)))
+
     def show_traces(self, snap) -> None:
+        """Draw a snapshot's traces, merged to about one min/max pair per pixel column (GUI thread)."""
         if snap.trace_t_s.shape[0] == 0:
             return
-        x = snap.trace_t_s - snap.t_device_s
+        g = self.buckets_per_point(snap.trace_t_s.shape[0] // 2)
+        x = peak_envelope(snap.trace_t_s[:, None], g, time=True)[:, 0] - snap.t_device_s
         if self.mode == "codes":
-            y = snap.trace_codes
+            y = peak_envelope(snap.trace_codes, g)
             for k, c in enumerate(self.code_curves):
                 c.setData(x, y[:, k])
         else:
-            y = snap.trace_resistance_ohm
+            y = peak_envelope(snap.trace_resistance_ohm, g)
             for k, c in enumerate(self.res_curves):
                 c.setData(x, y[:, k], connect="finite")
         if self.calibrated and snap.trace_curvature_per_m is not None:
-            y = snap.trace_curvature_per_m
+            y = peak_envelope(snap.trace_curvature_per_m, g)
             for k, c in enumerate(self.curv_curves):
                 c.setData(x, y[:, k], connect="finite")
         for shown, values, curve in ((self.extras[0], getattr(snap, "trace_force_n", None), self.force_curve),
                                      (self.extras[1] is not None, getattr(snap, "trace_actuation", None),
                                       self.act_curve)):
             if shown and values is not None:
-                curve.setData(x, values, connect="finite")
+                curve.setData(x, peak_envelope(values[:, None], g)[:, 0], connect="finite")
 
 
 class Timeline(pg.PlotWidget):

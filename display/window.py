@@ -397,7 +397,9 @@ class SensorWindow(QtWidgets.QMainWindow):
         self.drawn.append((snap.seq, snap.t_device_s, snap.t_host_s, now))
         if self.live:
             self._await_paint = snap.t_host_s
-            self.shape.viewport().update()
+            # one pixel asks for the paint event the latency is read from; a whole-view update would
+            # repaint the axes and grid every redraw
+            self.shape.viewport().update(0, 0, 1, 1)
 
     def eventFilter(self, obj, event):  # noqa: N802 (Qt name)
         if event.type() == QtCore.QEvent.Paint and self._await_paint is not None:

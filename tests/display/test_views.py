@@ -85,3 +85,24 @@ def test_no_step_during_the_warm_up():
     assert set(rates) == {60.0}
     _, _, rates = run(RedrawGovernor(warmup_s=2.0), seconds=3.0, load_cores=0.9)
     assert rates[-1] < 60.0
+
+
+def test_peak_envelope_keeps_every_peak_and_gap():
+    # closed form: the min / max of each group of buckets is the min / max of its rows
+    import numpy as np
+
+    from display.plot_cost import peak_envelope
+
+    rng = np.random.default_rng(3)
+    buckets = np.sort(rng.normal(size=(10, 2, 3)), axis=1)  # (min, max) per bucket, 3 columns
+    buckets[4, :, 1] = np.nan  # a gap in column 1
+    rows = buckets.reshape(20, 3)
+    out = peak_envelope(rows, 3)
+    assert out.shape == (6, 3)  # 10 // 3 groups; the oldest bucket left out
+    groups = buckets[1:].reshape(3, 3, 2, 3)
+    assert np.array_equal(out[0::2], np.min(groups, axis=(1, 2)), equal_nan=True)
+    assert np.array_equal(out[1::2], np.max(groups, axis=(1, 2)), equal_nan=True)
+    assert np.isnan(out[2:4, 1]).all() and np.isfinite(np.delete(out, [2, 3], axis=0)).all()
+    t = np.repeat(np.arange(10.0), 2)[:, None]
+    assert np.array_equal(peak_envelope(t, 3, time=True)[:, 0], np.repeat([2.0, 5.0, 8.0], 2))
+    assert peak_envelope(rows, 1) is rows
