@@ -14,20 +14,13 @@ import math
 from PyQt5 import QtWidgets
 
 from acquire.core.drift_live import DriftReadout, is_flat_label
+from acquire.session.status import format_age
 
 __all__ = ["DriftControls", "short_text"]
 
 HELD_FLAT_TIP = ("Press while the sensor is held flat (on a flat jig or the bench): the readout beside it shows how "
                  "far the flat reading has drifted since calibration, and whether a tare is due. Release before "
                  "bending it again. A label ‘flat’ does the same while it is open.")
-
-
-def _age(age_s: float) -> str:
-    if age_s < 90:
-        return f"{age_s:.0f} s ago"
-    if age_s < 5400:
-        return f"{age_s / 60:.0f} min ago"
-    return f"{age_s / 3600:.1f} h ago"
 
 
 def short_text(readout: DriftReadout | None, *, live: bool = True) -> tuple[str, str]:
@@ -41,7 +34,7 @@ def short_text(readout: DriftReadout | None, *, live: bool = True) -> tuple[str,
     w = readout.worst()
     if w is None:
         return "flat drift: no valid flat reading", "fault"
-    age = "" if readout.flat_now else f" ({_age(readout.age_s)})"
+    age = "" if readout.flat_now else f" ({format_age(readout.age_s)} ago)"
     if w.suspicious:
         return f"flat {w.drift_pct:+.1f} % in segment {w.segment}: check the strip{age}", "fault"
     due = readout.report.needs_tare

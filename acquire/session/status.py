@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
-__all__ = ["status_parts", "status_line", "fmt_bytes", "drift_part"]
+__all__ = ["status_parts", "status_line", "fmt_bytes", "drift_part", "format_age"]
 
 
 def fmt_bytes(n: float) -> str:
@@ -60,7 +60,8 @@ def _replay_parts(st: dict) -> list[str]:
     return parts
 
 
-def _age(age_s: float) -> str:
+def format_age(age_s: float) -> str:
+    """How long ago, in words a status line shows: ``"12 s"``, ``"4 min"``, ``"2.5 h"``. Pure."""
     if age_s < 90:
         return f"{age_s:.0f} s"
     if age_s < 5400:
@@ -93,7 +94,7 @@ def drift_part(d: dict | None) -> str | None:
     if d.get("settling"):
         text += ", still settling"
     if not d.get("flat_now"):
-        text += f" ({_age(d.get('age_s', 0.0))} ago)"
+        text += f" ({format_age(d.get('age_s', 0.0))} ago)"
     return text
 
 
