@@ -131,22 +131,11 @@ def _labels_in(path: Path) -> list[str]:
         return [x.decode() for x in f["labels/text"][:]]
 
 
+@pytest.mark.parametrize("command", ["record", "live"])
 @pytest.mark.parametrize("text, rid, recordable, reference", ROWS, ids=IDS)
-def test_record_label(runs, text, rid, recordable, reference):
-    r = runs["results"]["record", rid]
-    out = runs["files"]["record", rid]
-    if recordable:
-        assert _accepted(r), r.stderr
-        assert _labels_in(out) == [text]
-    else:
-        _assert_refused_naming(r, text)
-        assert not out.exists()
-
-
-@pytest.mark.parametrize("text, rid, recordable, reference", ROWS, ids=IDS)
-def test_live_label(runs, text, rid, recordable, reference):
-    r = runs["results"]["live", rid]
-    out = runs["files"]["live", rid]
+def test_label_while_recording(runs, command, text, rid, recordable, reference):
+    r = runs["results"][command, rid]
+    out = runs["files"][command, rid]
     if recordable:
         assert _accepted(r), r.stderr
         assert _labels_in(out) == [text]
