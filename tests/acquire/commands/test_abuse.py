@@ -419,6 +419,20 @@ def test_live_headless_record_hung_up_with_its_terminal_leaves_a_closed_recordin
 # ----------------------------------------------------------------------------- killed runs
 
 
+def _kill_when(proc, cond, what: str, wait_until, *, must_be_running: bool = False) -> None:
+    """SIGKILL ``proc`` once ``cond()`` holds (or it ended by itself); never leaves it running."""
+    try:
+        wait_until(lambda: cond() or proc.poll() is not None, timeout_s=60, what=what)
+        if must_be_running:
+            assert proc.poll() is None, "finished before it could be killed: " + proc.stderr.read()
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+
+
 def test_killed_process_leaves_no_partial_file_after_the_next_run(tmp_path, wait_until):
     src = make_recording(tmp_path / "long.h5", frames=120_000, label=None)
     cal = str(make_calibration(tmp_path / "cal.json"))
@@ -428,15 +442,7 @@ def test_killed_process_leaves_no_partial_file_after_the_next_run(tmp_path, wait
         return sorted(tmp_path.glob(f".{out.name}.*.partial"))
 
     proc = popen("process", str(src), "--calibration", cal, "--out", str(out), "--quiet")
-    try:
-        wait_until(lambda: partials() or proc.poll() is not None, timeout_s=60, what="a .partial file")
-        assert proc.poll() is None, "process finished before it could be killed: " + proc.stderr.read()
-        proc.send_signal(signal.SIGKILL)
-        proc.wait(timeout=30)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
+    _kill_when(proc, partials, "a .partial file", wait_until, must_be_running=True)
     assert partials() and not out.exists()  # the killed run left its partial file, as a kill does
     res = tapcurve("process", str(src), "--calibration", cal, "--out", str(out), "--quiet")
     assert res.returncode == 0, res.stderr
@@ -450,15 +456,7 @@ def test_killed_process_leaves_no_partial_file_after_the_next_run(tmp_path, wait
 def test_killed_recording_made_read_only_can_still_be_inspected(finger, tmp_path, wait_until):
     out = tmp_path / "killed.h5"
     proc = popen("record", "--port", finger.path, "--rig", str(RIG), "--out", str(out))
-    try:
-        wait_until(lambda: _frames_on_disk(out) > 500 or proc.poll() is not None, timeout_s=60,
-                   what="500 frames on disk")
-        proc.send_signal(signal.SIGKILL)
-        proc.wait(timeout=30)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
+    _kill_when(proc, lambda: _frames_on_disk(out) > 500, "500 frames on disk", wait_until)
     out.chmod(0o444)
     before = sha(out)
     res = tapcurve("inspect", str(out))
