@@ -3,7 +3,10 @@
 The live view, the recorder and the shape stream each run a Pipeline on
 blocks of a few frames (about 10 at 1 kHz and a 100 Hz pace). Measured on the
 demo rig with a pressure channel (6 segments, 1 mm point spacing, 111 shape
-points), codes from the virtual finger on a 25 mm jig:
+points), codes from the virtual finger on a 25 mm jig, for two chains:
+``with_shapes`` (what the recorder and the shape stream run) and
+``view_without_shapes`` (the live window's chain, which leaves the shape to
+the frames it draws: the force needs no shape points). Each gives:
 
 - ``pipeline_us_per_frame``: the whole chain (readout, checks, filters,
   calibration, reconstruction) without a force model;
@@ -27,7 +30,10 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
+import os
 import sys
+import tempfile
+import threading
 import time
 from pathlib import Path
 
@@ -69,7 +75,7 @@ def interleaved_us_per_frame(pipes: dict, codes: np.ndarray, *, block: int) -> d
     """
     n = codes.shape[0] - codes.shape[0] % block
     total = dict.fromkeys(pipes, 0.0)
-    clock = time.perf_counter
+    clock = time.thread_time  # CPU time of this thread: other processes on the machine do not count
     for i in range(0, n, block):
         part = codes[i:i + block]
         for name, pipe in pipes.items():
@@ -80,16 +86,92 @@ def interleaved_us_per_frame(pipes: dict, codes: np.ndarray, *, block: int) -> d
 
 
 def stage_us_per_frame(pipe: Pipeline, codes: np.ndarray, *, block: int) -> float:
-    """The force stage alone on the blocks' curvature, shape and actuation, microseconds per frame."""
+    """The force stage alone on the blocks' curvature and actuation, microseconds per frame."""
     n = codes.shape[0] - codes.shape[0] % block
     out = pipe.process_codes(codes[:n])
     act = pipe.filters.process(pipe._read(codes[:n])[2])[:, -1]  # the filtered actuation the stage is given
     k = out.curvature_per_m.astype(np.float64)
     cal, stage = pipe.calibration, pipe.force
-    t0 = time.perf_counter()
+    t0 = time.thread_time()
     for i in range(0, n, block):
-        stage.process(cal, k[i:i + block], out.xy_m[i:i + block], act[i:i + block])
-    return 1e6 * (time.perf_counter() - t0) / n
+        stage.process(cal, k[i:i + block], act[i:i + block])
+    return 1e6 * (time.thread_time() - t0) / n
+
+
+def measure(rig, codes, static, with_force, *, with_shape: bool, block: int, repeats: int) -> dict:
+    """The figures of one chain (with or without shape points), best of ``repeats`` interleaved runs."""
+    pipes = {}
+    for name, cal in (("pipeline_us_per_frame", static), ("with_force_us_per_frame", with_force)):
+        pipes[name] = Pipeline(rig=rig, calibration=cal, rate_hz=RATE_HZ, adc_bits=12, with_shape=with_shape,
+                               with_force_sigma=with_shape)
+        pipes[name].process_codes(codes[:50])  # first call: caches, imports
+    best = dict.fromkeys([*pipes, "force_stage_us_per_frame"], float("inf"))
+    added = []
+    for _ in range(repeats):
+        for pipe in pipes.values():
+            pipe.reset()
+        run = interleaved_us_per_frame(pipes, codes, block=block)
+        added.append(100.0 * (run["with_force_us_per_frame"] / run["pipeline_us_per_frame"] - 1.0))
+        for name, v in run.items():
+            best[name] = min(best[name], v)
+        stage_pipe = Pipeline(rig=rig, calibration=with_force, rate_hz=RATE_HZ, adc_bits=12, with_shape=with_shape,
+                              with_force_sigma=with_shape)
+        best["force_stage_us_per_frame"] = min(best["force_stage_us_per_frame"],
+                                               stage_us_per_frame(stage_pipe, codes, block=block))
+    figures = {name: round(v, 2) for name, v in best.items()}
+    base = figures["pipeline_us_per_frame"]
+    figures["added_percent"] = round(100.0 * (figures["with_force_us_per_frame"] - base) / base, 1)
+    figures["added_percent_median_of_runs"] = round(float(np.median(added)), 1)
+    figures["stage_percent_of_pipeline"] = round(100.0 * figures["force_stage_us_per_frame"] / base, 1)
+    return figures
+
+
+def _thread_cpu_s(native_id) -> float:
+    """CPU time (user + system, s) of one thread of this process, from /proc (Linux); NaN elsewhere."""
+    try:
+        fields = Path(f"/proc/self/task/{native_id}/stat").read_text().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError, TypeError):
+        return float("nan")
+
+
+def _live_cpu_s() -> float:
+    """CPU of the live path's threads (reader, view processing, recorder): all but the main one and the device's."""
+    skip = {threading.main_thread().ident}
+    return sum(_thread_cpu_s(t.native_id) for t in threading.enumerate()
+               if t.ident not in skip and not t.name.startswith("virtual"))
+
+
+def session_us_per_frame(rig, calibration, *, seconds: float, tmp: Path) -> float:
+    """One live session on the virtual finger (view processing and a recording, as ``live --record`` runs
+    them, no window): CPU microseconds per frame of its reader, view and recorder threads."""
+    from acquire.session import Session
+
+    session = Session(rig=rig, calibration=calibration, view=True, record_path=tmp / f"s{time.monotonic_ns()}.h5")
+    session.start()
+    try:
+        time.sleep(1.0)  # settle: first blocks, caches
+        ring = session.reader.ring
+        cpu0, n0 = _live_cpu_s(), ring.written
+        time.sleep(seconds)
+        cpu1, n1 = _live_cpu_s(), ring.written
+    finally:
+        session.stop()
+    return 1e6 * (cpu1 - cpu0) / max(1, n1 - n0)
+
+
+def session_figures(rig, static, with_force, *, seconds: float, repeats: int) -> dict:
+    """Sessions without and with the force model, alternated; the median of each."""
+    runs = {"live_us_per_frame": [], "live_with_force_us_per_frame": []}
+    with tempfile.TemporaryDirectory() as tmp:
+        for _ in range(repeats):
+            for name, cal in zip(runs, (static, with_force)):
+                runs[name].append(session_us_per_frame(rig, cal, seconds=seconds, tmp=Path(tmp)))
+    out = {name: round(float(np.median(v)), 2) for name, v in runs.items()}
+    base = out["live_us_per_frame"]
+    out["added_percent"] = round(100.0 * (out["live_with_force_us_per_frame"] - base) / base, 1)
+    out["seconds_per_run"], out["runs"] = seconds, repeats
+    return out
 
 
 def main() -> None:
@@ -103,28 +185,13 @@ def main() -> None:
     codes = FingerModel(rig=rig, seed=0).with_hold("radius=25mm").codes(fi / RATE_HZ, frame_index=fi)
     codes[:, 6] = 3200
     static, with_force = calibrations(rig)
-    pipes = {}
-    for name, cal in (("pipeline_us_per_frame", static), ("with_force_us_per_frame", with_force)):
-        pipes[name] = Pipeline(rig=rig, calibration=cal, rate_hz=RATE_HZ, adc_bits=12)
-        pipes[name].process_codes(codes[:50])  # first call: caches, imports
-    best = dict.fromkeys([*pipes, "force_stage_us_per_frame"], float("inf"))
-    added = []
-    for _ in range(repeats):
-        for pipe in pipes.values():
-            pipe.reset()
-        run = interleaved_us_per_frame(pipes, codes, block=args.block)
-        added.append(100.0 * (run["with_force_us_per_frame"] / run["pipeline_us_per_frame"] - 1.0))
-        for name, v in run.items():
-            best[name] = min(best[name], v)
-        stage_pipe = Pipeline(rig=rig, calibration=with_force, rate_hz=RATE_HZ, adc_bits=12)
-        best["force_stage_us_per_frame"] = min(best["force_stage_us_per_frame"],
-                                               stage_us_per_frame(stage_pipe, codes, block=args.block))
-    figures = {name: round(v, 2) for name, v in best.items()}
-    base = figures["pipeline_us_per_frame"]
-    figures["added_percent"] = round(100.0 * (figures["with_force_us_per_frame"] - base) / base, 1)
-    figures["added_percent_median_of_runs"] = round(float(np.median(added)), 1)
-    figures["stage_percent_of_pipeline"] = round(100.0 * figures["force_stage_us_per_frame"] / base, 1)
+    figures = {}
+    for chain, with_shape in (("with_shapes", True), ("view_without_shapes", False)):
+        figures[chain] = measure(rig, codes, static, with_force, with_shape=with_shape, block=args.block,
+                                 repeats=repeats)
     figures["block_frames"] = args.block
+    figures["session"] = session_figures(rig, static, with_force, seconds=1.5 if args.quick else 10.0,
+                                         repeats=1 if args.quick else 3)
     figures["target_added_percent"] = 15.0
     print(json.dumps(figures))
 

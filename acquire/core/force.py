@@ -77,6 +77,8 @@ __all__ = [
     "ForceEstimator",
     "estimate_force",
     "segment_moment_arms",
+    "SolveSettings",
+    "solve_settings",
     "QUADRATURES",
     "DEFAULT_AXIAL_PRIOR_SIGMA_N",
     "DEFAULT_AXIAL_FRICTION",
@@ -234,6 +236,46 @@ class ForceResult:
     residual_per_m: np.ndarray
     tangent: np.ndarray
     contact_s_m: np.ndarray
+
+
+@dataclass(frozen=True)
+class SolveSettings:
+    """The estimator options in the form the solve uses (see :func:`solve_settings`)."""
+
+    sqrt_w: np.ndarray  # (S,) 1 / curvature noise, m
+    inv_sqrt_w: np.ndarray  # (S,) curvature noise, 1/m
+    scale_ab: np.ndarray  # (S,) sqrt(w) / EI: moment arm (m) to scaled equation, per N
+    prior_prec: float  # 1/N^2, 0 for none
+    prior_mean_n: float
+    friction: float | None
+    inflate: bool
+
+    def solve_options(self) -> dict:
+        """Keywords of :func:`acquire.core.force_solve.solve_contact` and friends."""
+        return {"prior_prec": self.prior_prec, "prior_mean_n": self.prior_mean_n, "friction": self.friction,
+                "inflate": self.inflate}
+
+
+def solve_settings(model, *, axial_prior_sigma_n: float = DEFAULT_AXIAL_PRIOR_SIGMA_N, axial_prior_mean_n: float = 0.0,
+                   axial_friction: float | None = None, curvature_noise_per_m=DEFAULT_CURVATURE_NOISE_PER_M,
+                   inflate_by_residual: bool = True) -> SolveSettings:
+    """Check the estimator options (see :class:`ForceEstimator`) against ``model``; ValueError names the bad one."""
+    if not isinstance(model, ForceModel):
+        raise TypeError("model must be a ForceModel")
+    if not axial_prior_sigma_n > 0:
+        raise ValueError("axial_prior_sigma_n must be positive (inf for no prior), N")
+    if axial_friction is not None and not (math.isfinite(axial_friction) and axial_friction > 0):
+        raise ValueError("axial_friction must be a positive finite number (or None)")
+    noise = np.broadcast_to(np.asarray(curvature_noise_per_m, dtype=np.float64), (model.n_segments,))
+    if not np.all(np.isfinite(noise) & (noise > 0)):
+        raise ValueError("curvature_noise_per_m must be positive and finite, 1/m")
+    sw = 1.0 / noise
+    return SolveSettings(
+        sqrt_w=sw, inv_sqrt_w=noise.copy(), scale_ab=sw / model.ei_n_m2,
+        prior_prec=0.0 if math.isinf(axial_prior_sigma_n) else 1.0 / axial_prior_sigma_n**2,
+        prior_mean_n=float(axial_prior_mean_n),
+        friction=None if axial_friction is None else float(axial_friction),
+        inflate=bool(inflate_by_residual))
 
 
 # ----------------------------------------------------------------------------- geometry
@@ -411,27 +453,17 @@ class ForceEstimator:
         inflate_by_residual: bool = True,
         quadrature: str = "cubic",
     ):
-        if not isinstance(model, ForceModel):
-            raise TypeError("model must be a ForceModel")
-        if not axial_prior_sigma_n > 0:
-            raise ValueError("axial_prior_sigma_n must be positive (inf for no prior), N")
-        if axial_friction is not None and not (math.isfinite(axial_friction) and axial_friction > 0):
-            raise ValueError("axial_friction must be a positive finite number (or None)")
-        noise = np.broadcast_to(np.asarray(curvature_noise_per_m, dtype=np.float64), (model.n_segments,))
-        if not np.all(np.isfinite(noise) & (noise > 0)):
-            raise ValueError("curvature_noise_per_m must be positive and finite, 1/m")
+        st = solve_settings(model, axial_prior_sigma_n=axial_prior_sigma_n, axial_prior_mean_n=axial_prior_mean_n,
+                            axial_friction=axial_friction, curvature_noise_per_m=curvature_noise_per_m,
+                            inflate_by_residual=inflate_by_residual)
         self.model = model
         self._geom = _Geometry(model.segment_lengths_m, s_m, contact_s_m, contact_candidates_m, quadrature)
         self.s_m = self._geom.s
         self.contacts_m = self._geom.contacts_m
         n_seg, n_pts, n_c = model.n_segments, self._geom.n_points, self.contacts_m.size
-        self._sw = 1.0 / noise  # sqrt of the weights
-        self._inv_sw = noise.copy()
-        self._scale_ab = self._sw / model.ei_n_m2  # a = sqrt(w) A / EI
-        self._prior_prec = 0.0 if math.isinf(axial_prior_sigma_n) else 1.0 / axial_prior_sigma_n**2
-        self._prior_mean = float(axial_prior_mean_n)
-        self._friction = None if axial_friction is None else float(axial_friction)
-        self._inflate = bool(inflate_by_residual)
+        self._sw, self._inv_sw, self._scale_ab = st.sqrt_w, st.inv_sqrt_w, st.scale_ab
+        self._prior_prec, self._prior_mean, self._friction, self._inflate = (
+            st.prior_prec, st.prior_mean_n, st.friction, st.inflate)
         self._fast = self._fast_weights() if n_c == 1 else None
         # frames per internal block: bounds the temporaries to about 1 MB each
         width = (2 * n_pts + n_seg + model.degree) if n_c == 1 else n_c * n_seg * 3

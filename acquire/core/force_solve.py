@@ -32,7 +32,7 @@ import functools
 
 import numpy as np
 
-__all__ = ["solve_stacked", "solve_one_contact"]
+__all__ = ["solve_stacked", "solve_one_contact", "solve_contact"]
 
 
 def solve_stacked(z, tx, ty, inv_sqrt_w, *, prior_prec: float, prior_mean_n: float, friction,
@@ -112,13 +112,7 @@ def solve_stacked(z, tx, ty, inv_sqrt_w, *, prior_prec: float, prior_mean_n: flo
 
 def solve_one_contact(out, n_seg: int, inv_sqrt_w, *, prior_prec: float, prior_mean_n: float, friction,
                       inflate: bool):
-    """:func:`solve_stacked` for one contact point, in complex arithmetic (the live path's few operations).
-
-    Plane vectors are complex numbers ``x + i y``. With ``e_k = sqrt(w_k) (A_k - i B_k) / EI_k``
-    each equation reads ``y_k = Im(e_k F)``, so the normal matrix is ``(s I + Q(q)) / 2``
-    (``s`` real, ``Q(q)`` the symmetric trace-free matrix of a complex ``q``, ``Q(q)^2 = |q|^2 I``)
-    and its inverse ``2 (s I - Q(q)) / (s^2 - |q|^2)``: the 2 x 2 solve, the priors and the
-    variances become a handful of complex operations on arrays of N.
+    """:func:`solve_contact` on one product's columns (see :class:`acquire.core.force.ForceEstimator`).
 
     Parameters
     ----------
@@ -137,52 +131,111 @@ def solve_one_contact(out, n_seg: int, inv_sqrt_w, *, prior_prec: float, prior_m
     tangent : ndarray, shape (N, 2)
         Unit tangent at the contact. NaN throughout for a frame that cannot be solved.
     """
-    n = out.shape[0]
-    e = out[:, :2 * n_seg].view(np.complex128)  # (N, S)
-    y = out[:, 2 * n_seg:3 * n_seg]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        d = out[:, 3 * n_seg:].view(np.complex128)[:, 0]
+        ct = np.conj(d / np.abs(d))
+    force, comp, sigma, rms = solve_contact(
+        out[:, :2 * n_seg].view(np.complex128), out[:, 2 * n_seg:3 * n_seg], ct, inv_sqrt_w,
+        prior_prec=prior_prec, prior_mean_n=prior_mean_n, friction=friction, inflate=inflate)
+    tangent = np.conj(ct).view(np.float64).reshape(-1, 2)
+    tangent[np.isnan(force[:, 0])] = np.nan
+    return [force, comp.imag.copy(), comp.real.copy(), sigma[:, 0], sigma[:, 1], rms, tangent]
+
+
+def solve_contact(e, y, ct, inv_sqrt_w, *, prior_prec: float, prior_mean_n: float, friction, inflate: bool,
+                  with_sigma: bool = True):
+    """:func:`solve_stacked` for one contact point, in complex arithmetic (the live path's few operations).
+
+    Plane vectors are complex numbers ``x + i y``. With ``e_k = sqrt(w_k) (A_k - i B_k) / EI_k``
+    each equation reads ``y_k = Im(e_k F)``, so the normal matrix is ``(s I + Q(q)) / 2``
+    (``s`` real, ``Q(q)`` the symmetric trace-free matrix of a complex ``q``, ``Q(q)^2 = |q|^2 I``)
+    and its inverse ``2 (s I - Q(q)) / (s^2 - |q|^2)``: the 2 x 2 solve, the priors and the
+    variances become a handful of complex operations on arrays of N.
+
+    Parameters
+    ----------
+    e : ndarray of complex128, shape (N, S)
+        ``sqrt(w_k) (A_k - i B_k) / EI_k``, 1/m per N (its rows contiguous).
+    y : ndarray of float64, shape (N, S)
+        Curvature minus the free curvature, scaled by ``sqrt(w)``, 1.
+    ct : ndarray of complex128, shape (N,)
+        Complex conjugate of the unit tangent at the contact.
+    inv_sqrt_w, prior_prec, prior_mean_n, friction, inflate
+        As for :func:`solve_stacked`.
+    with_sigma : bool
+        Also the components, their uncertainties and the residual (False: the
+        force alone, in about half the operations, for a view that draws only it).
+
+    Returns
+    -------
+    force_n : ndarray of float64, shape (N, 2)
+        (Fx, Fy), N.
+    components : ndarray of complex128, shape (N,), or None
+        ``F_a + i F_n``: the axial and normal components, N.
+    sigma_n : ndarray of float64, shape (N, 2), or None
+        1-sigma of the normal and the axial component, N.
+    rms_per_m : ndarray, shape (N,), or None
+        RMS curvature residual, 1/m.
+
+    All new arrays; NaN throughout for a frame that cannot be solved.
+    """
+    n, n_seg = y.shape
     ones = _ones(n_seg)  # sums over the segments as products: fewer calls than reductions
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        d = out[:, 3 * n_seg:].view(np.complex128)[:, 0]
-        t = d / np.abs(d)
-        ct = np.conj(t)
-        tc2 = ct * ct
-        s = (out[:, :2 * n_seg] ** 2) @ ones[1]  # sum |e|^2
+        s = (e.view(np.float64) ** 2) @ ones[1]  # sum |e|^2
         qm = np.conj((e * e) @ ones[0])  # minus the trace-free part q of the data's normal matrix
         sey = (e * y) @ ones[0]
-        g = 1j * np.conj(sey)  # the right-hand side, complex
-        prec, cone = prior_prec, 0.0
+        prec, cone, priors = prior_prec, 0.0, friction is not None or prior_prec > 0
+        if priors:
+            tc2 = ct * ct
         if friction is not None:  # first pass: the normal component alone
             hnn = 0.5 * (s + (qm * tc2).real)
-            gn = (t * sey).real
+            gn = (sey * np.conj(ct)).real
             cone = hnn * hnn / ((friction * friction) * (gn * gn + hnn))  # 1 / (mu^2 (F_n0^2 + var_n0))
             prec = prec + cone
-        if friction is not None or prior_prec > 0:
+        if priors:
             s = s + prec
             qm = qm - prec * np.conj(tc2)
-            if prior_prec > 0 and prior_mean_n != 0:
-                g = g + (prior_prec * prior_mean_n) * t
-        half_det = 0.5 * (s * s - (qm * np.conj(qm)).real)
-        f = (s * g + qm * np.conj(g)) / half_det  # Fx + i Fy
+        g = 2j * np.conj(sey)  # twice the right-hand side, complex
+        if prior_prec > 0 and prior_mean_n != 0:
+            g = g + (2.0 * prior_prec * prior_mean_n) * np.conj(ct)
+        det = s * s - (qm * np.conj(qm)).real  # twice the determinant
+        f = (s * g + qm * np.conj(g)) / det  # Fx + i Fy
+        bad = ~(det > 1e-12 * s * s)
+        force = f.view(np.float64).reshape(n, 2)
+        if not with_sigma:
+            if bad.any():
+                force[bad] = np.nan
+            return force, None, None, None
         comp = f * ct  # fa + i fn
-        fa, fn = comp.real, comp.imag
+        fa = comp.real
         r = y - (e * f[:, None]).imag
         rr = r * r
         chi2 = rr @ ones[2]
-        if friction is not None or prior_prec > 0:
+        if priors:
             chi2 += prec * (fa * fa) if prior_mean_n == 0 else cone * (fa * fa) + prior_prec * (fa - prior_mean_n) ** 2
-        rq = (qm * tc2).real
-        var_n, var_a = (s - rq) / half_det, (s + rq) / half_det
-        dof = n_seg - (1 if (prior_prec > 0 or friction is not None) else 2)
+        scale = 2.0 / det
+        dof = n_seg - (1 if priors else 2)
         if inflate and dof > 0:
-            scale = np.maximum(chi2 * (1.0 / dof), 1.0)
-            var_n, var_a = var_n * scale, var_a * scale
-        res = [f.view(np.float64).reshape(n, 2), fn, fa, np.sqrt(var_n), np.sqrt(var_a),
-               np.sqrt(rr @ (inv_sqrt_w * inv_sqrt_w * (1.0 / n_seg))), t.view(np.float64).reshape(n, 2)]
-        ok = (half_det > 5e-13 * s * s) & (chi2 == chi2)
-    if np.count_nonzero(ok) != n:
+            scale *= np.maximum(chi2 * (1.0 / dof), 1.0)
+        rq = (qm * tc2).real if priors else (qm * ct * ct).real
+        sigma = np.empty((n, 2))
+        np.subtract(s, rq, out=sigma[:, 0])
+        np.add(s, rq, out=sigma[:, 1])
+        sigma *= scale[:, None]
+        np.sqrt(sigma, out=sigma)
+        res = [force, comp, sigma, np.sqrt(rr @ _rms_weights(inv_sqrt_w))]
+        bad |= np.isnan(chi2)
+    if bad.any():
         for arr in res:
-            arr[~ok] = np.nan
+            arr[bad] = np.nan
     return res
+
+
+def _rms_weights(inv_sqrt_w) -> np.ndarray:
+    """sigma**2 / S: the mean of the unscaled squared residual as a product."""
+    w = np.asarray(inv_sqrt_w, dtype=np.float64)
+    return w * w * (1.0 / w.size)
 
 
 @functools.lru_cache(maxsize=16)

@@ -128,6 +128,11 @@ class Pipeline:
         See :mod:`acquire.core.reconstruct`.
     mask_faults : bool
         See the module docstring.
+    with_shape : bool
+        Compute the shape points (False: ``xy_m`` is None; a view draws only the frames it shows).
+    with_force_sigma : bool
+        With a force model, also the force's uncertainties (False: ``force_sigma_n`` is None,
+        the force in about half the work; a view that draws the force alone).
 
     Threads: :meth:`process` and :meth:`reset` run on the processing thread
     (they are serialised by a lock, so another thread may call :meth:`reset`
@@ -152,6 +157,7 @@ class Pipeline:
         method: str = "smooth",
         mask_faults: bool = True,
         with_shape: bool = True,
+        with_force_sigma: bool = True,
     ):
         self.rig = rig
         self.with_shape = bool(with_shape)
@@ -164,8 +170,7 @@ class Pipeline:
         self.filters = FilterChain.from_rig(rig, rate_hz=rate_hz, n_signals=rig.n_segments + n_act)
         self.reconstructor = Reconstructor.from_rig(rig, spacing_m=spacing_m, method=method)
         self.memory = MemoryStage(rate_hz=rate_hz)
-        self.force = ForceStage(rig=rig, s_m=self.reconstructor.s_m,
-                                n_sensor_points=int(self.reconstructor.tap_index[-1]) + 1)
+        self.force = ForceStage(rig=rig, reconstructor=self.reconstructor, with_sigma=with_force_sigma)
         self._cal_lock = threading.Lock()
         self._run_lock = threading.Lock()
         self.calibration_notes: list[str] = []
@@ -292,11 +297,8 @@ class Pipeline:
             k, outside = cal.evaluate(filtered)
         if cal is not None:
             curvature = k.astype(np.float32)
-            need_shape = self.with_shape or cal.force_model is not None
-            xy = self.reconstructor.shape_xy(k, dtype=np.float32) if need_shape else None
-            force = self.force.process(cal, k, xy, act_filtered)
-            if not self.with_shape:
-                xy = None
+            xy = self.reconstructor.shape_xy(k, dtype=np.float32) if self.with_shape else None
+            force = self.force.process(cal, k, act_filtered)
         return Processed(
             resistance_ohm=resistance,
             filtered_ohm=filtered,

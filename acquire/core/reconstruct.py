@@ -171,6 +171,21 @@ class Reconstructor:
             t[:, -1] += np.maximum(s - L, 0.0)
         return t
 
+    def heading_matrix(self, s_m) -> np.ndarray:
+        """The linear map from mean curvature to the heading the method assumes at arc lengths ``s_m``.
+
+        Parameters
+        ----------
+        s_m : array_like, shape (M,)
+            Arc lengths, m (0 .. sensor length + tip).
+
+        Returns
+        -------
+        ndarray of float64, shape (M, S)
+            ``theta(s_m) = T @ mean_curvature`` (rad per 1/m, i.e. m); new array.
+        """
+        return self._theta_matrix(np.asarray(s_m, dtype=np.float64).reshape(-1))
+
     def curvature_at(self, curvature_per_m: np.ndarray, s_m: np.ndarray) -> np.ndarray:
         """The curvature profile the method assumes, at arbitrary arc lengths.
 

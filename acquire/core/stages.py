@@ -13,8 +13,8 @@ publish and process compute them the same way.
     it directly (:meth:`~acquire.core.calibration.Calibration.evaluate_relative`)
     and reports it in ohm as ``r0 (1 + x)``.
 :class:`ForceStage`
-    curvature, shape and actuation -> the force at the sensor's far end
-    (:class:`~acquire.core.force.ForceEstimator`), and the actuation input
+    curvature and actuation -> the force at the sensor's far end
+    (:class:`~acquire.core.force_direct.CurvatureForce`), and the actuation input
     in the rig's unit whenever the rig has an ``[actuation]`` channel.
 
 Thread rules: an instance belongs to one Pipeline and runs on its
@@ -58,10 +58,10 @@ class MemoryStage:
 class ForceStage:
     """Actuation from its channel and the force from the shape, following the calibration's force model."""
 
-    def __init__(self, *, rig, s_m: np.ndarray, n_sensor_points: int):
+    def __init__(self, *, rig, reconstructor, with_sigma: bool = True):
         self.actuation = getattr(rig, "actuation", None)
-        self.s_m = np.asarray(s_m, dtype=np.float64)[:n_sensor_points]
-        self.n_points = int(n_sensor_points)
+        self.reconstructor = reconstructor
+        self.with_sigma = bool(with_sigma)
         self._key = None
         self._estimator = None
 
@@ -69,20 +69,24 @@ class ForceStage:
         """(N,) actuation in the rig's unit, or None without an ``[actuation]`` channel (new array)."""
         return None if self.actuation is None else self.actuation.value(codes)
 
-    def process(self, calibration, curvature_per_m, xy_m, actuation) -> tuple[np.ndarray, np.ndarray] | None:
-        """(force_n (N, 2) float32, sigma_n (N, 2) float32: normal and axial 1-sigma), or None."""
+    def process(self, calibration, curvature_per_m, actuation) -> tuple[np.ndarray, np.ndarray] | None:
+        """(force_n (N, 2) float32, sigma_n (N, 2) float32 or None: normal and axial 1-sigma), or None.
+
+        From the curvature (N, S) 1/m and the actuation (N,) alone, with the
+        reconstruction's heading between the taps (no shape points needed);
+        sigma is None for a stage made ``with_sigma=False`` (a view's).
+        """
         model = None if calibration is None else calibration.force_model
         if model is None or actuation is None:
             return None
         if self._key is not calibration.force:
-            from acquire.core.force import ForceEstimator
+            from acquire.core.force_direct import CurvatureForce
 
             self._key = calibration.force
             options = _estimator_options(calibration.force.get("estimator"))
-            self._estimator = ForceEstimator(model, self.s_m, **options)
-        res = self._estimator.process(curvature_per_m, xy_m[:, : self.n_points], actuation)
-        sigma = np.stack([res.sigma_normal_n, res.sigma_axial_n], axis=1)
-        return res.force_n.astype(np.float32), sigma.astype(np.float32)
+            self._estimator = CurvatureForce(model, self.reconstructor, **options)
+        force, sigma = self._estimator.force_and_sigma(curvature_per_m, actuation, with_sigma=self.with_sigma)
+        return force.astype(np.float32), None if sigma is None else sigma.astype(np.float32)
 
 
 #: estimator options a calibration's force section may carry (fitted with it), and their bounds

@@ -326,7 +326,8 @@ class ViewFeed:
 
 
 class DisplayChain:
-    """The numeric chain for a display: a Pipeline without shapes (the feed draws only the frames it shows).
+    """The numeric chain for a display: a Pipeline without shapes (the feed draws only the frames it shows)
+    and without the force's uncertainties (the display draws the force alone).
 
     Thread use: :meth:`process` on the producer thread; :meth:`set_calibration`
     and :meth:`tare` from any thread (take effect at the next block).
@@ -339,7 +340,8 @@ class DisplayChain:
         from acquire.core.pipeline import Pipeline
 
         self.rig = rig
-        self.pipeline = Pipeline(rig=rig, calibration=None, rate_hz=rate_hz, adc_bits=adc_bits, with_shape=False)
+        self.pipeline = Pipeline(rig=rig, calibration=None, rate_hz=rate_hz, adc_bits=adc_bits, with_shape=False,
+                                 with_force_sigma=False)
         self.reconstructor = self.pipeline.reconstructor
         self.feed = ViewFeed(
             n_channels=rig.n_channels,

@@ -20,7 +20,9 @@ from scipy.integrate import cumulative_simpson, solve_bvp, solve_ivp
 from scipy.optimize import root
 
 from acquire.core.force import ForceEstimator, ForceModel, estimate_force, segment_moment_arms
+from acquire.core.force_direct import CurvatureForce
 from acquire.core.force_fit import ForceCalibrationError, ForceHold, fit_force_model
+from acquire.core.reconstruct import Reconstructor
 
 L6 = np.full(6, 0.016)  # six 16 mm segments, the demo rig's layout
 LEN = float(L6.sum())
@@ -533,3 +535,98 @@ def test_calibration_warns_when_force_follows_pressure():
     _, report = fit_force_model(corr, segment_lengths_m=L6)
     assert np.all(report.separation < 0.05)
     assert any("cannot separate stiffness from actuation" in w for w in report.warnings)
+
+
+# ----------------------------------------------------------------------------- from curvature alone
+
+
+def direct(model=None, method="smooth", **options):
+    """The live chain's estimator: moment arms from the reconstruction's heading, no shape points."""
+    rec = Reconstructor(L6, method=method)
+    return CurvatureForce(uniform_model() if model is None else model, rec, **options), rec
+
+
+@pytest.mark.parametrize("alpha", [0.5, 1.0, 2.0, 5.0])
+def test_direct_force_from_exact_segment_means(elastica, alpha):
+    # Bisshopp & Drucker's elastica (solve_bvp): fed the exact segment means, the live chain's
+    # estimate is within the brief's 1 % with the smooth reconstruction between the taps.
+    p_n = alpha * EI / LEN**2
+    _, _, kappa, th_tip = bvp_frame(elastica[alpha])
+    est, _ = direct(axial_prior_sigma_n=np.inf)
+    res = est.process(kappa[None], 0.0)
+    assert np.hypot(*(res.force_n[0] - [0.0, p_n])) < 0.01 * p_n
+    assert res.normal_n[0] == pytest.approx(p_n * np.cos(th_tip), rel=0.01)
+    with_prior = direct()[0].process(kappa[None], 0.0)
+    assert np.hypot(*(with_prior.force_n[0] - [0.0, p_n])) < 0.01 * p_n
+
+
+@pytest.mark.parametrize("method", ["smooth", "arcs"])
+def test_direct_arms_equal_dense_shape_arms(elastica, method):
+    # Two quadratures of the same heading model: Gauss nodes on the heading (direct) and a cubic
+    # spline through shape points every 0.05 mm (the shape-point estimator). They agree to 1e-6.
+    frames = [bvp_frame(elastica[a])[2] for a in (0.5, 2.0, 5.0)]
+    kappa = np.stack(frames + [np.array([80.0, -60.0, 120.0, 0.0, -90.0, 40.0])])
+    est, rec = direct(method=method, curvature_noise_per_m=0.1, axial_friction=0.5)
+    dense = Reconstructor(L6, spacing_m=5e-5, method=method)
+    ref = ForceEstimator(uniform_model(), dense.s_m, curvature_noise_per_m=0.1, axial_friction=0.5).process(
+        kappa, dense.shape_xy(kappa), 0.0)
+    got = est.process(kappa, 0.0)
+    scale = np.abs(ref.force_n).max()
+    np.testing.assert_allclose(got.force_n, ref.force_n, rtol=0, atol=1e-6 * scale)
+    np.testing.assert_allclose(got.tangent, ref.tangent, atol=1e-6)  # the points' spline slope: ~1e-7 off
+    np.testing.assert_allclose(got.sigma_normal_n, ref.sigma_normal_n, rtol=1e-5)
+
+
+def test_direct_actuation_and_contact_inside_the_sensor():
+    # The independent shooting solver (solve_ivp + root) with free curvature and a contact inside
+    # segment 4: the estimate from its exact segment means is within 1 %.
+    a_k = np.array([0.30, 0.35, 0.40, 0.40, 0.35, 0.30])
+    ei = np.array([6.0, 5.5, 5.0, 4.5, 4.0, 3.5]) * 1e-3
+    sc = KNOTS[4] + 0.4 * L6[4]
+    force = np.array([-0.1, 0.5])
+    _, _, kappa = shoot(L6, ei, a_k * 30.0, force, contact=sc)
+    model = ForceModel(L6, ei, a_k[:, None], "kPa")
+    est = CurvatureForce(model, Reconstructor(L6), contact_s_m=sc, axial_prior_sigma_n=np.inf)
+    res = est.process(kappa[None], [30.0])
+    assert np.hypot(*(res.force_n[0] - force)) < 0.01 * np.hypot(*force)
+    assert res.contact_s_m[0] == sc
+
+
+def test_direct_stream_behaviour(elastica):
+    rng = np.random.default_rng(7)
+    frames = [bvp_frame(elastica[a])[2] for a in (0.5, 1.0, 2.0, 5.0)]
+    kappa = np.stack([frames[i] for i in rng.integers(0, 4, size=60)]) + rng.normal(0, 0.1, (60, 6))
+    p = rng.uniform(0, 40, 60)
+    model = ForceModel(L6, np.full(6, EI), np.full((6, 2), 0.01), "kPa")  # quadratic free curvature
+    est, _ = direct(model, axial_friction=0.5, axial_prior_sigma_n=0.5)
+    whole = est.process(kappa, p)
+    cuts = [0, 1, 9, 10, 33, 60]
+    parts = [est.process(kappa[a:b], p[a:b]) for a, b in zip(cuts[:-1], cuts[1:])]
+    for name in ("force_n", "normal_n", "axial_n", "sigma_normal_n", "sigma_axial_n", "residual_per_m", "tangent"):
+        np.testing.assert_allclose(np.concatenate([getattr(r, name) for r in parts]), getattr(whole, name),
+                                   rtol=1e-12, atol=1e-12)
+    # the view's shortcut: the same force, with and without the uncertainties
+    force, sigma = est.force_and_sigma(kappa, p)
+    np.testing.assert_array_equal(force, whole.force_n)
+    np.testing.assert_array_equal(sigma, np.column_stack([whole.sigma_normal_n, whole.sigma_axial_n]))
+    alone, none = est.force_and_sigma(kappa, p, with_sigma=False)
+    np.testing.assert_array_equal(alone, whole.force_n)
+    assert none is None
+    # a NaN curvature or actuation makes its frame NaN, and only it
+    kappa[5, 2], p[7] = np.nan, np.nan
+    bad = est.process(kappa, p)
+    assert np.isnan(bad.force_n[[5, 7]]).all() and np.isnan(bad.sigma_normal_n[[5, 7]]).all()
+    assert np.isfinite(np.delete(bad.force_n, [5, 7], axis=0)).all()
+    assert np.isnan(est.force_and_sigma(kappa, p, with_sigma=False)[0][[5, 7]]).all()
+
+
+def test_direct_refuses_what_it_cannot_use():
+    with pytest.raises(ValueError, match="contact_s_m"):
+        direct(contact_s_m=2 * LEN)
+    with pytest.raises(ValueError, match="segment lengths"):
+        CurvatureForce(uniform_model(), Reconstructor(np.full(6, 0.017)))
+    with pytest.raises(ValueError, match="curvature_noise_per_m"):
+        direct(curvature_noise_per_m=0.0)
+    est, _ = direct()
+    with pytest.raises(ValueError, match="expected shape"):
+        est.process(np.zeros((3, 5)), 0.0)
