@@ -30,10 +30,7 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
-import os
 import sys
-import tempfile
-import threading
 import time
 from pathlib import Path
 
@@ -46,6 +43,7 @@ from acquire.core.force import ForceModel  # noqa: E402
 from acquire.core.pipeline import Pipeline  # noqa: E402
 from acquire.rig import parse_rig  # noqa: E402
 from acquire.virtual import FingerModel  # noqa: E402
+from bench.live_cpu import compare_sessions  # noqa: E402
 
 RATE_HZ = 1000.0
 RIG = Path(__file__).resolve().parents[1] / "acquire" / "rigs" / "demo_finger.toml"
@@ -126,54 +124,6 @@ def measure(rig, codes, static, with_force, *, with_shape: bool, block: int, rep
     return figures
 
 
-def _thread_cpu_s(native_id) -> float:
-    """CPU time (user + system, s) of one thread of this process, from /proc (Linux); NaN elsewhere."""
-    try:
-        fields = Path(f"/proc/self/task/{native_id}/stat").read_text().rsplit(")", 1)[1].split()
-        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
-    except (OSError, ValueError, IndexError, TypeError):
-        return float("nan")
-
-
-def _live_cpu_s() -> float:
-    """CPU of the live path's threads (reader, view processing, recorder): all but the main one and the device's."""
-    skip = {threading.main_thread().ident}
-    return sum(_thread_cpu_s(t.native_id) for t in threading.enumerate()
-               if t.ident not in skip and not t.name.startswith("virtual"))
-
-
-def session_us_per_frame(rig, calibration, *, seconds: float, tmp: Path) -> float:
-    """One live session on the virtual finger (view processing and a recording, as ``live --record`` runs
-    them, no window): CPU microseconds per frame of its reader, view and recorder threads."""
-    from acquire.session import Session
-
-    session = Session(rig=rig, calibration=calibration, view=True, record_path=tmp / f"s{time.monotonic_ns()}.h5")
-    session.start()
-    try:
-        time.sleep(1.0)  # settle: first blocks, caches
-        ring = session.reader.ring
-        cpu0, n0 = _live_cpu_s(), ring.written
-        time.sleep(seconds)
-        cpu1, n1 = _live_cpu_s(), ring.written
-    finally:
-        session.stop()
-    return 1e6 * (cpu1 - cpu0) / max(1, n1 - n0)
-
-
-def session_figures(rig, static, with_force, *, seconds: float, repeats: int) -> dict:
-    """Sessions without and with the force model, alternated; the median of each."""
-    runs = {"live_us_per_frame": [], "live_with_force_us_per_frame": []}
-    with tempfile.TemporaryDirectory() as tmp:
-        for _ in range(repeats):
-            for name, cal in zip(runs, (static, with_force)):
-                runs[name].append(session_us_per_frame(rig, cal, seconds=seconds, tmp=Path(tmp)))
-    out = {name: round(float(np.median(v)), 2) for name, v in runs.items()}
-    base = out["live_us_per_frame"]
-    out["added_percent"] = round(100.0 * (out["live_with_force_us_per_frame"] - base) / base, 1)
-    out["seconds_per_run"], out["runs"] = seconds, repeats
-    return out
-
-
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="a short run (checks that it works)")
@@ -190,8 +140,9 @@ def main() -> None:
         figures[chain] = measure(rig, codes, static, with_force, with_shape=with_shape, block=args.block,
                                  repeats=repeats)
     figures["block_frames"] = args.block
-    figures["session"] = session_figures(rig, static, with_force, seconds=1.5 if args.quick else 10.0,
-                                         repeats=1 if args.quick else 3)
+    figures["session"] = compare_sessions(
+        rig, {"live_us_per_frame": static, "live_with_force_us_per_frame": with_force},
+        seconds=1.5 if args.quick else 10.0, repeats=1 if args.quick else 3)
     figures["target_added_percent"] = 15.0
     print(json.dumps(figures))
 

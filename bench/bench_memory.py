@@ -5,6 +5,10 @@
   with a static calibration and with the same calibration carrying a memory
   model (5 play thresholds, one creep term). Target: memory adds at most 20 %
   (``memory_overhead_pct_chunkwise_median``).
+- ``live_session``: the whole live path, as ``tapcurve live --record`` runs
+  it without a window: CPU microseconds per frame of a live session's reader,
+  view and recorder threads on the virtual finger, static and with memory
+  (``bench/live_cpu.py``); ``added_percent`` against the same 20 % target.
 - ``accuracy`` (not with ``--quick``): the virtual finger's model evaluated
   in process (the same codes the pty device sends, without the pty): labelled
   holds, calibrated by ``calibrate_files`` (memory where it wins held-out) and
@@ -46,6 +50,7 @@ from acquire.store.recording import open_recording  # noqa: E402
 from acquire.virtual.camera import Camera, CameraSettings, write_marker_csv  # noqa: E402
 from acquire.virtual.model import FingerModel  # noqa: E402
 from acquire.virtual.strip import StripSettings  # noqa: E402
+from bench.live_cpu import compare_sessions  # noqa: E402
 
 RATE_HZ = 1000.0
 BITS = 12
@@ -256,6 +261,10 @@ def main() -> int:
     if not args.accuracy_only:
         figures["live_us_per_frame"] = live_timing(rig, seconds=1.0 if args.quick else 5.0,
                                                    repeats=2 if args.quick else 5)
+        figures["live_session"] = compare_sessions(
+            rig, {"static_us_per_frame": demo_calibration(rig, memory=False),
+                  "memory_us_per_frame": demo_calibration(rig, memory=True)},
+            seconds=1.5 if args.quick else 10.0, repeats=1 if args.quick else 3)
     if not args.quick:
         modes = ("real", "ideal") if args.strip == "both" else (args.strip,)
         figures["mean_tip_error_pct_of_length"] = accuracy(rig, hold_s=args.hold_s, motion_s=args.motion_s,
