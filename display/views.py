@@ -339,6 +339,17 @@ def _curve(plot, colour, name: str, *, skip_finite_check: bool = False) -> pg.Pl
     return curve
 
 
+def _title(plot, text: str) -> None:
+    """The quantity and unit of a trace as a small title over it: short rows have no room for a vertical label.
+
+    The left axis then shows plain numbers in that unit (no SI prefix of its own, which only an axis label shows).
+    """
+    plot.setTitle(text, size="8pt", color=COLOURS["muted"], justify="left")
+    plot.layout.setRowFixedHeight(0, 15)  # pyqtgraph reserves 30 px: half a short row
+    plot.titleLabel.setMaximumHeight(15)
+    plot.getAxis("left").enableAutoSIPrefix(False)
+
+
 class TraceView(pg.GraphicsLayoutWidget):
     """Rolling traces: channels (ADC codes or segment resistance) above, segment curvature below.
 
@@ -366,7 +377,7 @@ class TraceView(pg.GraphicsLayoutWidget):
             cache_axes(p)
         self.bottom.setXLink(self.top)
         self.bottom.setLabel("bottom", "time before the newest frame", units="s")
-        self.bottom.setLabel("left", "curvature", units="1/m")
+        _title(self.bottom, "curvature (1/m)")
         self.top_legend = self.top.addLegend(offset=(4, 2), labelTextColor=COLOURS["muted"], colCount=8,
                                              labelTextSize="7pt")
         self.bottom_legend = self.bottom.addLegend(offset=(4, 2), labelTextColor=COLOURS["muted"], colCount=8,
@@ -395,7 +406,7 @@ class TraceView(pg.GraphicsLayoutWidget):
         plot.showGrid(x=True, y=True, alpha=0.15)
         plot.setMouseEnabled(x=False, y=True)
         plot.getAxis("left").setWidth(72)
-        plot.setLabel("left", label, units=units)
+        _title(plot, label if units is None else f"{label} ({units})")
         plot.setXLink(self.top)
         plot.setMaximumHeight(110)
         cache_axes(plot)
@@ -414,7 +425,7 @@ class TraceView(pg.GraphicsLayoutWidget):
             self.addItem(self.force_plot, row=row, col=0)
             row += 1
         if actuation_unit is not None:
-            self.act_plot.setLabel("left", f"actuation ({actuation_unit})" if actuation_unit else "actuation")
+            _title(self.act_plot, f"actuation ({actuation_unit})" if actuation_unit else "actuation")
             self.addItem(self.act_plot, row=row, col=0)
 
     def set_mode(self, mode: str) -> None:
@@ -432,11 +443,11 @@ class TraceView(pg.GraphicsLayoutWidget):
         for c in self.code_curves if codes else self.res_curves:
             self.top_legend.addItem(c, c.name())
         if codes:
-            self.top.setLabel("left", "ADC code", units=None)
+            _title(self.top, "ADC code")
             self.top.enableAutoRange(y=False)
             self.top.setYRange(0, self.full_scale, padding=0.02)
         else:
-            self.top.setLabel("left", "segment resistance", units="Ω")
+            _title(self.top, "segment resistance (Ω)")
             self.top.enableAutoRange(y=True)
 
     def set_calibrated(self, calibrated: bool) -> None:
