@@ -125,8 +125,12 @@ class ShapeView(pg.PlotWidget):
         self.body_item.setBrush(QtGui.QBrush(fill))
         self.body_item.setPen(_pen(COLOURS["body_edge"], 1.2))
         plot.addItem(self.body_item)
-        self.trail = pg.ScatterPlotItem(size=4, pen=None, antialias=True)
-        plot.addItem(self.trail)
+        # the tip's recent path: three fixed layers, older ones fainter (one pen each: a per-point brush
+        # list made the trail the costliest item of a redraw)
+        r, g, bl = COLOURS["trail"]
+        self.trail_layers = [pg.PlotCurveItem(pen=_pen((r, g, bl, a), 2), antialias=True) for a in (45, 110, 220)]
+        for item in self.trail_layers:
+            plot.addItem(item)
         self.tip_curve = pg.PlotCurveItem(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
         plot.addItem(self.tip_curve)
         self.sensor_curve = pg.PlotCurveItem(pen=_pen(COLOURS["sensor"], 3), antialias=True)
@@ -148,7 +152,6 @@ class ShapeView(pg.PlotWidget):
         self.force_scale_m_per_n = None
         self._arrow_shown = False
         self._label_symbols = [_text_symbol(str(j)) for j in range(len(self.tap_index))]
-        self._trail_brushes: dict[int, list] = {}
         self.message = ""
         # a label over the view, not in it: it stays put when the user pans or zooms
         self.message_label = QtWidgets.QLabel("", self)
@@ -226,15 +229,6 @@ class ShapeView(pg.PlotWidget):
             self._place_force_label()
         self.force_label.setVisible(True)
 
-    def _brushes(self, n: int) -> list:
-        b = self._trail_brushes.get(n)
-        if b is None:
-            r, g, bl = COLOURS["trail"]
-            alphas = np.linspace(15, 220, n) if n > 1 else [220]
-            b = [pg.mkBrush(r, g, bl, int(a)) for a in alphas]
-            self._trail_brushes[n] = b
-        return b
-
     def show_shape(self, xy_m: np.ndarray | None, *, trail_xy_m: np.ndarray | None = None,
                    outline_xy_m: np.ndarray | None = None) -> None:
         """Draw one frame's shape (P, 2) m, or clear it with None."""
@@ -244,7 +238,7 @@ class ShapeView(pg.PlotWidget):
             self.taps.setData([], [])
             self.tap_labels.setData([], [])
             self.body_item.setPath(QtGui.QPainterPath())
-            self.trail.setData([], [])
+            self._show_trail(None)
             return
         e = self.end_index
         self.sensor_curve.setData(xy_m[: e + 1, 0], xy_m[: e + 1, 1])
@@ -262,11 +256,16 @@ class ShapeView(pg.PlotWidget):
             self.body_item.setPath(path)
         else:
             self.body_item.setPath(QtGui.QPainterPath())
-        if trail_xy_m is not None and len(trail_xy_m):
-            t = trail_xy_m[np.isfinite(trail_xy_m).all(axis=1)]
-            self.trail.setData(t[:, 0], t[:, 1], brush=self._brushes(len(t)))
-        else:
-            self.trail.setData([], [])
+        self._show_trail(trail_xy_m)
+
+    def _show_trail(self, trail_xy_m) -> None:
+        """The trail (K, 2) m, oldest first, in three consecutive parts sharing their end points."""
+        t = np.zeros((0, 2)) if trail_xy_m is None else trail_xy_m[np.isfinite(trail_xy_m).all(axis=1)]
+        n = len(t)
+        edges = [0, n // 3, (2 * n) // 3, n]
+        for item, a, b in zip(self.trail_layers, edges[:-1], edges[1:]):
+            part = t[a:min(n, b + 1)]
+            item.setData(part[:, 0], part[:, 1])
 
 
 class SegmentBars(pg.PlotWidget):
