@@ -28,7 +28,9 @@ fit would take for hysteresis).
 *Static law again*: the static law was fitted to hold means that still
 contained creep (and the loading branch of the hysteresis); it is fitted
 again to the holds (and the motion's training part) with the memory taken
-out, so that law and memory agree. With motion this alternates (memory from
+out, so that law and memory agree. The holds' moves between jigs are taken
+as monotone there (:func:`acquire.core.memory_steps.compensate_holds`): the
+filters overshoot a quick step, and the plays would keep that reversal. With motion this alternates (memory from
 the law, law from the memory). Creep from the motion is searched in the
 first round only (it is the slow part and hardly moves later).
 
@@ -90,6 +92,7 @@ from acquire.core.memory_invfit import (
 from acquire.core.memory_steps import (
     MemoryReport,
     SegmentMemoryReport,
+    compensate_holds,
     hold_steps,
     rms_per_segment,
     unit_scale,
@@ -210,7 +213,7 @@ def _compensated_holds(law0: Calibration, holds: Sequence[HoldsSeries], memory: 
     for series in holds:
         t = np.asarray(series.t_s, float)
         x = np.asarray(series.resistance_ohm, float) / law0.r0_ohm - 1.0
-        r = law0.r0_ohm * (1.0 + memory.compensate(x, rate_hz=series.rate_hz))
+        r = law0.r0_ohm * (1.0 + compensate_holds(memory, t, x, series.holds, rate_hz=series.rate_hz))
         for span in series.holds:
             a, b = np.searchsorted(t, span.t_start_s, "left"), np.searchsorted(t, span.t_end_s, "right")
             mask = steady_part(t[a:b], r[a:b], span.t_start_s, span.t_end_s)

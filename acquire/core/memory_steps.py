@@ -13,14 +13,15 @@ from typing import Sequence
 
 import numpy as np
 
-from .memory import SegmentMemory
+from .memory import SegmentMemory, StripMemory
 from .memory_fit import HoldStep
 
-__all__ = ["hold_steps", "unit_scale", "rms_per_segment", "SegmentMemoryReport", "MemoryReport"]
+__all__ = ["hold_steps", "compensate_holds", "unit_scale", "rms_per_segment", "SegmentMemoryReport", "MemoryReport"]
 
 _SPEED_SMOOTH_S = 0.02  # moving average of the reading's speed when finding the move into a hold, s
 _MOVE_END_FRACTION = 0.1  # a move has ended when the speed falls below this fraction of its peak
 _MAX_GAP_S = 10.0  # holds further apart than this are not one chain of steps, s
+_LEVEL_FRACTION = 0.1  # a hold's level: the mean of its last tenth (settled, creep taken out)
 
 
 def _speed(t_s: np.ndarray, x: np.ndarray) -> np.ndarray:
@@ -64,6 +65,53 @@ def hold_steps(t_s, x, holds: Sequence, *, barriers=()) -> list[HoldStep]:
         out.append(HoldStep(t_step, t_first, span.t_end_s, chained))
         prev_end = span.t_end_s
     return out
+
+
+def compensate_holds(memory: StripMemory, t_s, x, holds: Sequence, *, rate_hz: float) -> np.ndarray:
+    """``memory.compensate(x)`` (N, S) of a holds recording, each move between holds taken as monotone.
+
+    The creep is taken out first; then, from the end of one hold to the
+    labelled start of the next, the signal is kept between the two holds'
+    levels before the plays see it. The filters' step response overshoots (a
+    2nd-order Butterworth by about 4 % of the step, for tens of ms): after a
+    quick move between jigs that is a reversal the strip never made, which
+    the plays would remember through the hold (on the virtual finger, with
+    the strip's true memory, the flat hold after the largest bend came out
+    1.4 to 1.7 % of its resistance high, 0.1 % with the moves kept monotone;
+    that error moved the law's flat resistance, and the motion's hysteresis
+    fit then took the offset for a narrower band). Outside those moves this
+    is ``compensate``.
+
+    Parameters
+    ----------
+    memory : StripMemory
+    t_s : array_like, shape (N,)
+        Frame times, s.
+    x : array_like, shape (N, S)
+        Relative resistance change of the whole recording (frames at ``rate_hz``).
+    holds : sequence
+        Objects with ``t_start_s`` and ``t_end_s`` (s), in time order.
+    rate_hz : float
+        Frame rate, Hz.
+    """
+    t = np.asarray(t_s, float)
+    y = memory.relaxation(rate_hz=rate_hz).inverse().process(np.asarray(x, float))
+    prev = None
+    for span in holds:
+        a, b = int(np.searchsorted(t, span.t_start_s, "left")), int(np.searchsorted(t, span.t_end_s, "right"))
+        if b <= a:
+            continue
+        tail = y[b - max(1, round(_LEVEL_FRACTION * (b - a))):b]
+        ok = np.isfinite(tail)
+        n = ok.sum(axis=0)
+        level = np.where(n > 0, np.where(ok, tail, 0.0).sum(axis=0) / np.maximum(n, 1), np.nan)
+        if prev is not None:
+            start, prev_level = prev
+            lo, hi = np.fmin(prev_level, level), np.fmax(prev_level, level)
+            y[start:a] = np.clip(y[start:a], np.where(np.isfinite(lo), lo, -np.inf),
+                                 np.where(np.isfinite(hi), hi, np.inf))
+        prev = (b, level)
+    return memory.pi_operator().inverse().process(y)
 
 
 def unit_scale(seg: SegmentMemory) -> SegmentMemory:
