@@ -126,6 +126,8 @@ def measure(rig, codes, static, with_force, *, with_shape: bool, block: int, rep
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--session-s", type=float, default=None,
+                    help="seconds measured per live session (default 10, 1.5 with --quick)")
     ap.add_argument("--quick", action="store_true", help="a short run (checks that it works)")
     ap.add_argument("--block", type=int, default=10, help="frames per block (default 10)")
     args = ap.parse_args()
@@ -142,7 +144,7 @@ def main() -> None:
     figures["block_frames"] = args.block
     figures["session"] = compare_sessions(
         rig, {"live_us_per_frame": static, "live_with_force_us_per_frame": with_force},
-        seconds=1.5 if args.quick else 10.0, repeats=1 if args.quick else 3)
+        seconds=args.session_s or (1.5 if args.quick else 10.0), repeats=1 if args.quick else 3)
     figures["target_added_percent"] = 15.0
     print(json.dumps(figures))
 

@@ -249,6 +249,8 @@ def accuracy(rig, *, hold_s: float, motion_s: float, grasp_s: float, modes=("rea
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--session-s", type=float, default=None,
+                    help="seconds measured per live session (default 10, 1.5 with --quick)")
     ap.add_argument("--quick", action="store_true", help="timing only, short")
     ap.add_argument("--hold-s", type=float, default=6.0, help="seconds per labelled hold (default 6)")
     ap.add_argument("--motion-s", type=float, default=40.0, help="seconds of the filmed free motion (default 40)")
@@ -264,7 +266,7 @@ def main() -> int:
         figures["live_session"] = compare_sessions(
             rig, {"static_us_per_frame": demo_calibration(rig, memory=False),
                   "memory_us_per_frame": demo_calibration(rig, memory=True)},
-            seconds=1.5 if args.quick else 10.0, repeats=1 if args.quick else 3)
+            seconds=args.session_s or (1.5 if args.quick else 10.0), repeats=1 if args.quick else 3)
     if not args.quick:
         modes = ("real", "ideal") if args.strip == "both" else (args.strip,)
         figures["mean_tip_error_pct_of_length"] = accuracy(rig, hold_s=args.hold_s, motion_s=args.motion_s,

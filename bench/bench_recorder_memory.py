@@ -4,7 +4,7 @@ Feeds a FrameRing in-process with 16-channel frames at 25,000 frames/s (wall
 clock) while a Recorder writes them, sampling the process's resident memory
 every few seconds. Target: flat (no growth beyond noise) over 10 minutes.
 Run by hand: ``.venv/bin/python bench/bench_recorder_memory.py`` (default 600 s;
-``--quick``: 10 s).
+``--quick``: 10 s; ``--seconds`` sets the length either way).
 """
 from __future__ import annotations
 
@@ -29,11 +29,11 @@ def rss_mb() -> float:
 
 def main(argv=None) -> dict:
     ap = argparse.ArgumentParser(description=__doc__)
-    ap.add_argument("--seconds", type=float, default=600.0)
+    ap.add_argument("--seconds", type=float, default=None, help="length of the run (default 600 s, 10 s with --quick)")
     ap.add_argument("--rate-hz", type=float, default=25_000)
     ap.add_argument("--quick", action="store_true")
     args = ap.parse_args(argv)
-    seconds = 10.0 if args.quick else args.seconds
+    seconds = args.seconds or (10.0 if args.quick else 600.0)
     channels = 16
     ring = FrameRing(capacity_frames=int(args.rate_hz * 20), n_channels=channels)
     rng = np.random.default_rng(0)

@@ -11,7 +11,8 @@ file's overhead (what no dataset holds: mostly the earlier copies of the /raw
 chunks each 0.25 s flush rewrites, which a file written in SWMR mode does not
 reuse, and metadata), and the recorder thread's CPU (Linux: /proc).
 
-Run by hand: ``.venv/bin/python bench/bench_size.py`` (``--quick``: 4 s).
+Run by hand: ``.venv/bin/python bench/bench_size.py`` (``--quick``: 4 s; ``--seconds`` sets the
+length either way).
 """
 from __future__ import annotations
 
@@ -72,10 +73,10 @@ def _thread_cpu_s(native_id: int | None) -> float:
 
 def main(argv=None) -> dict:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--seconds", type=float, default=30.0)
+    ap.add_argument("--seconds", type=float, default=None, help="recording length (default 30 s, 4 s with --quick)")
     ap.add_argument("--quick", action="store_true")
     args = ap.parse_args(argv)
-    seconds = 4.0 if args.quick else args.seconds
+    seconds = args.seconds or (4.0 if args.quick else 30.0)
     rig = load_rig(None)
     cal = builtin_calibration(rig)
     with tempfile.TemporaryDirectory() as tmp:

@@ -46,7 +46,7 @@ def session_us_per_frame(rig, calibration, *, seconds: float, folder: Path) -> f
                       record_path=folder / f"live-{time.monotonic_ns()}.h5")
     session.start()
     try:
-        time.sleep(1.0)  # settle: first blocks, caches
+        time.sleep(min(1.0, max(0.3, seconds)))  # settle: first blocks, caches
         ring = session.reader.ring
         cpu0, n0 = live_threads_cpu_s(), ring.written
         time.sleep(seconds)

@@ -14,11 +14,6 @@ import sys
 from pathlib import Path
 from typing import Sequence, TextIO
 
-from acquire.commands.calibrate_memory import print_memory_report
-from acquire.commands.calibrate_motion import (
-    calibrate_with_motion,
-    print_calibration_report,
-)
 from acquire.commands.calibrate_run import fit_warnings, print_holds_report
 from acquire.commands.common import _warn, write_text_output
 from acquire.commands.report_figure import figure_path, report_svg
@@ -61,6 +56,10 @@ def calibrate_command(
     figure = check_output(figure_path(out), option="--out", force=force, inputs=inputs,
                           what="calibration report picture", can_force=True)
     table = load_reference_table(reference_path) if reference_path else None
+    # the fits load scipy's signal and statistics (about 1.5 s): only once the arguments are known good
+    from acquire.commands.calibrate_memory import print_memory_report
+    from acquire.commands.calibrate_motion import calibrate_with_motion, print_calibration_report
+
     # holds only: calibrate_with_force (which adds the force model when there are force holds)
     run = calibrate_with_motion(files, motions, rig=rig, table=table, stdout=stdout, stderr=stderr, static=static)
     for note in run.notes:

@@ -12,6 +12,7 @@ import dataclasses
 import os
 import subprocess
 import sys
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import h5py
@@ -22,19 +23,16 @@ from PyQt5 import QtGui
 from acquire.commands.calibrate_motion import marker_overlay
 from acquire.rig import load_rig
 from acquire.sources.replay import ReplaySource
-from acquire.virtual import VirtualFinger
 from acquire.virtual.camera import Camera, CameraSettings
 from acquire.virtual.model import FingerModel
-from acquire.virtual.strip import StripSettings
 from display.markers_overlay import LEGEND_TEXT
 from display.theme import COLOURS
 from display.window import SensorWindow
 
 REPO = Path(__file__).resolve().parents[2]
-DEMO_RIG = REPO / "acquire" / "rigs" / "demo_finger.toml"
 MARKERS_S_MM = [0, 8, 16, 24, 32, 40, 48, 56, 64, 72, 80, 88, 96]  # each tap and each segment's middle
-SEED = 0
-DURATION_S = 30.0
+SEED = 7  # the film's (tests/conftest.py, filmed_motion)
+DURATION_S = 40.0
 
 
 def tapcurve(*args, timeout_s: float = 180.0) -> subprocess.CompletedProcess:
@@ -44,28 +42,16 @@ def tapcurve(*args, timeout_s: float = 180.0) -> subprocess.CompletedProcess:
 
 
 @pytest.fixture(scope="module")
-def film(tmp_path_factory):
-    """30 s of the finger's free motion, filmed (default camera), recorded through the serial path, and a
-    calibration fitted from that film (``calibrate --motion``): the shape drawn is then the filmed curve."""
-    d = tmp_path_factory.mktemp("markers_overlay")
-    rig_path = d / "rig_middles.toml"
-    rig_path.write_text(DEMO_RIG.read_text().replace(
-        "[body]", f"[markers]\ns_mm = [{', '.join(map(str, MARKERS_S_MM))}]\n\n[body]"))
-    rig = load_rig(rig_path)
-    paths = {"rig": rig_path, "rec": d / "free.h5", "markers": d / "free.csv", "truth": d / "free_truth.h5",
-             "cal": d / "free_cal.json"}
-    # the ideal strip: no creep lag between the resistance and the curvature the camera sees
-    dev = VirtualFinger(rig=rig, rate_hz=1000, seed=SEED, scenario="free", time_scale=8.0,
-                        truth_path=paths["truth"], markers_path=paths["markers"], strip=StripSettings(mode="ideal"))
-    dev.start()
-    try:
-        r = tapcurve("record", "--port", dev.path, "--rig", rig_path, "--out", paths["rec"],
-                     "--duration", DURATION_S, "--quiet")
-        assert r.returncode == 0, r.stderr
-    finally:
-        dev.stop()
-    r = tapcurve("calibrate", "--rig", rig_path, "--out", paths["cal"], "--motion", paths["rec"], paths["markers"])
-    assert r.returncode == 0, r.stderr
+def film(filmed_motion):
+    """40 s of the finger's free motion (ideal strip: no creep lag between the resistance and the curvature the
+    camera sees), filmed by a camera whose clock is 5 s behind and 230 ppm slow, recorded through the serial
+    path, and a calibration fitted from that film (``calibrate --motion``): the shape drawn is then the filmed
+    curve. Made once per run (``filmed_motion``, tests/conftest.py), shared with test_calibrate_motion.py."""
+    paths = {"rig": filmed_motion["rig"], "rec": filmed_motion["film"]["rec"],
+             "markers": filmed_motion["film"]["markers"], "truth": filmed_motion["film"]["truth"],
+             "cal": filmed_motion["cal"], "camera": CameraSettings(**filmed_motion["camera"])}
+    assert filmed_motion["seed"] == SEED and filmed_motion["duration_s"] == DURATION_S
+    assert load_rig(paths["rig"]).markers_s_m == pytest.approx(np.array(MARKERS_S_MM) / 1e3)
     paths["overlay"] = marker_overlay(paths["rec"], paths["markers"])
     return paths
 
@@ -75,7 +61,7 @@ def film(tmp_path_factory):
 def test_overlay_is_the_filmed_markers_in_the_base_frame_at_device_time(film):
     ov = film["overlay"]
     rig = load_rig(film["rig"])
-    cam = Camera(CameraSettings(), rig=rig)
+    cam = Camera(film["camera"], rig=rig)
     t_cam = np.loadtxt(film["markers"], delimiter=",", skiprows=1, usecols=0)
     with h5py.File(film["truth"], "r") as f:
         t0 = float(f["t_device_s"][0])  # the recording's clock reads 0 here (its first frame)
@@ -85,7 +71,7 @@ def test_overlay_is_the_filmed_markers_in_the_base_frame_at_device_time(film):
     # resistance the clocks are aligned on: a real lag, not a clock error; as in test_calibrate_motion)
     inside = (t_model - t0 > 0.5) & (t_model - t0 < DURATION_S - 0.5)
     assert np.abs(ov.t_device_s - (t_model - t0))[inside].max() < 3 / 60
-    # 60 frames/s on the camera's clock; the fitted rate of a 30 s film is good to a few thousand ppm
+    # 60 frames/s on the camera's clock; the fitted rate of a 40 s film is good to a few thousand ppm
     assert ov.interval_s == pytest.approx(1 / 60, rel=5e-3)
     # place: the markers on the model's exact shape, in its base frame (camera noise 0.1 mm and a 0.2 mm
     # wobble of the mount; wild points and misses are left out by the percentiles / NaN)
@@ -237,12 +223,15 @@ def _marker_pixels(path: Path) -> int:
 
 def test_export_with_markers_writes_them_in_the_picture(film, tmp_path, artifacts, gui):
     out = artifacts / "markers_overlay_export.png"
-    r = tapcurve("export", film["rec"], "--out", out, "--time", 7.0, "--calibration", film["cal"],
-                 "--markers", film["markers"], "--force")
-    assert r.returncode == 0, r.stderr
     plain = tmp_path / "plain.png"
-    r = tapcurve("export", film["rec"], "--out", plain, "--time", 7.0, "--calibration", film["cal"])
+    with ThreadPoolExecutor(max_workers=2) as pool:  # two independent runs, side by side
+        with_markers = pool.submit(tapcurve, "export", film["rec"], "--out", out, "--time", 7.0, "--calibration",
+                                   film["cal"], "--markers", film["markers"], "--force")
+        without = pool.submit(tapcurve, "export", film["rec"], "--out", plain, "--time", 7.0, "--calibration",
+                              film["cal"])
+        r, r_plain = with_markers.result(), without.result()
     assert r.returncode == 0, r.stderr
+    assert r_plain.returncode == 0, r_plain.stderr
     assert QtGui.QImage(str(out)).width() > 0
     # the circles and the legend's sample are there; nothing of that colour without --markers
     assert _marker_pixels(out) > 200 and _marker_pixels(plain) == 0
@@ -269,11 +258,16 @@ def test_bad_marker_files_one_line_exit_2(film, tmp_path):
     shifted = tmp_path / "shifted.csv"
     shifted.write_text("\n".join([lines[0]] + [f"{float(r.split(',')[0]) + 1000:.6f}," + r.split(",", 1)[1]
                                                for r in lines[1:]]) + "\n")
-    for bad, why in ((header_only, "header but no data rows"), (shifted, "no overlap in time"),
-                     (tmp_path / "absent.csv", "absent.csv")):
-        r = tapcurve("replay", film["rec"], "--calibration", film["cal"], "--markers", bad, "--duration", 30)
-        _one_line_exit_2(r, bad, why)
-        out = tmp_path / f"{bad.stem}.png"
-        r = tapcurve("export", film["rec"], "--out", out, "--calibration", film["cal"], "--markers", bad)
-        _one_line_exit_2(r, bad, why)
-        assert not out.exists()
+    cases = ((header_only, "header but no data rows"), (shifted, "no overlap in time"),
+             (tmp_path / "absent.csv", "absent.csv"))
+    with ThreadPoolExecutor(max_workers=3) as pool:  # independent runs, side by side
+        runs = [(bad, why, tmp_path / f"{bad.stem}.png",
+                 pool.submit(tapcurve, "replay", film["rec"], "--calibration", film["cal"], "--markers", bad,
+                             "--duration", 30),
+                 pool.submit(tapcurve, "export", film["rec"], "--out", tmp_path / f"{bad.stem}.png",
+                             "--calibration", film["cal"], "--markers", bad))
+                for bad, why in cases]
+        for bad, why, out, replay, export in runs:
+            _one_line_exit_2(replay.result(), bad, why)
+            _one_line_exit_2(export.result(), bad, why)
+            assert not out.exists()

@@ -338,14 +338,15 @@ def _film_alone(folder, rig, *, seed, strip, gap_s=None, seconds=30.0):
 
 
 @pytest.mark.slow  # about 10 s of CPU per case
-@pytest.mark.parametrize("seed, gap_s", [(1, None), (8, None), (8, (12.0, 12.6))])
+@pytest.mark.parametrize("seed, gap_s", [(1, None), (8, (12.0, 12.6))])
 def test_ideal_strip_filmed_alone_keeps_no_memory(tmp_path, seed, gap_s):
     # The virtual finger's ideal strip is the static law alone (acquire/virtual/strip.py, mode "ideal"): it has
     # no memory by construction, so a memory model can only fit the film's noise and lag. Held out honestly
     # (both arms fitted to the same first 75 %), it must not win by the 5 % margin (common practice, no source).
     # Seed 8 kept a hysteresis model (bands 1.1-1.4 %) before both arms were fitted and aligned each on their
-    # own; seed 1 fits the largest spurious bands (3-4.5 %). One case also loses frames on the link (a gap the
-    # recording shows as a jump in seq and time).
+    # own; seed 1 fits the largest spurious bands (3-4.5 %). The seed-8 case also loses frames on the link (a
+    # gap the recording shows as a jump in seq and time); a separate seed-8 case without the gap ran the same
+    # film through the same fit (0.6 s of 30 s apart) and was dropped for the suite's time.
     run = _film_alone(tmp_path, _bench_memory().filmed_rig(), seed=seed, strip=StripSettings(mode="ideal"),
                       gap_s=gap_s)
     assert run.memory_report is not None

@@ -11,6 +11,7 @@ from __future__ import annotations
 import subprocess
 import sys
 import xml.etree.ElementTree as ET
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import h5py
@@ -20,12 +21,10 @@ import pytest
 from acquire.core.align import align_clocks
 from acquire.core.markers import fit_marker_frames, read_marker_csv
 from acquire.rig import load_rig
-from acquire.virtual import StripSettings, VirtualFinger
 from acquire.virtual.camera import Camera, CameraSettings, write_marker_csv
 from acquire.virtual.model import FingerModel
 
 REPO = Path(__file__).resolve().parents[3]
-DEMO_RIG = REPO / "acquire" / "rigs" / "demo_finger.toml"
 SVG = "{http://www.w3.org/2000/svg}"
 
 
@@ -34,45 +33,12 @@ def tapcurve(*args, timeout_s: float = 180.0) -> subprocess.CompletedProcess:
                           timeout=timeout_s, cwd=REPO)
 
 
-def rig_with_middles(folder: Path) -> Path:
-    """The demo rig with a marker at each tap and each segment's middle (2S + 1 = 13 markers)."""
-    text = DEMO_RIG.read_text().replace(
-        "[body]", "[markers]\ns_mm = [0, 8, 16, 24, 32, 40, 48, 56, 64, 72, 80, 88, 96]\n\n[body]")
-    path = folder / "rig_middles.toml"
-    path.write_text(text)
-    return path
-
-
-def record(folder: Path, rig_path: Path, name: str, *, scenario: str, duration_s: float, seed: int = 7,
-           markers: bool, camera: CameraSettings | None = None, strip=None) -> dict:
-    """Record the virtual finger through the serial path (``tapcurve record``), filming it if ``markers``."""
-    rig = load_rig(rig_path)
-    paths = {"rec": folder / f"{name}.h5", "truth": folder / f"{name}_truth.h5",
-             "markers": folder / f"{name}.csv" if markers else None}
-    dev = VirtualFinger(rig=rig, rate_hz=1000, seed=seed, scenario=scenario, time_scale=8.0,
-                        truth_path=paths["truth"], markers_path=paths["markers"],
-                        camera=camera if markers else None, strip=strip)
-    dev.start()
-    try:
-        r = tapcurve("record", "--port", dev.path, "--rig", rig_path, "--out", paths["rec"],
-                     "--duration", duration_s, "--quiet")
-        assert r.returncode == 0, r.stderr
-    finally:
-        dev.stop()
-    return paths
-
-
 @pytest.fixture(scope="module")
-def motion(tmp_path_factory):
+def motion(filmed_motion):
     """One 40 s filmed free-motion session (camera clock offset -5 s, -230 ppm) and one grasp recording
-    of the same finger (a different motion) with ground truth."""
-    d = tmp_path_factory.mktemp("motion")
-    rig_path = rig_with_middles(d)
-    ideal = StripSettings(mode="ideal")  # the strip without memory: what a static law can reach
-    film = record(d, rig_path, "free", scenario="free", duration_s=40, markers=True,
-                  camera=CameraSettings(seed=7, offset_s=-5.0, rate_ppm=-230.0), strip=ideal)
-    grasp = record(d, rig_path, "grasp", scenario="grasp", duration_s=16, markers=False, strip=ideal)
-    return {"dir": d, "rig": rig_path, "film": film, "grasp": grasp}
+    of the same finger (a different motion) with ground truth, both on the ideal strip (the strip without
+    memory: what a static law can reach); made once per run (``filmed_motion``, tests/conftest.py)."""
+    return filmed_motion
 
 
 # --- bad input: one line, exit 2, nothing written -------------------------------------------------
@@ -98,9 +64,15 @@ def _bad_csvs(folder: Path, good: Path) -> dict:
 
 
 def test_bad_marker_files_one_line_exit_2_nothing_written(motion, tmp_path):
-    for name, (path, message) in _bad_csvs(tmp_path, motion["film"]["markers"]).items():
+    bad = _bad_csvs(tmp_path, motion["film"]["markers"])
+    with ThreadPoolExecutor(max_workers=3) as pool:  # independent runs, side by side
+        runs = {name: pool.submit(tapcurve, "calibrate", "--rig", motion["rig"], "--out",
+                                  tmp_path / f"cal_{name}.json", "--motion", motion["film"]["rec"], path)
+                for name, (path, _) in bad.items()}
+        runs = {name: f.result() for name, f in runs.items()}
+    for name, (path, message) in bad.items():
         out = tmp_path / f"cal_{name}.json"
-        r = tapcurve("calibrate", "--rig", motion["rig"], "--out", out, "--motion", motion["film"]["rec"], path)
+        r = runs[name]
         assert r.returncode == 2, (name, r.stderr)
         assert len(r.stderr.strip().splitlines()) == 1 and str(path) in r.stderr and message in r.stderr, r.stderr
         assert not out.exists() and not out.with_suffix(".svg").exists()
@@ -108,20 +80,27 @@ def test_bad_marker_files_one_line_exit_2_nothing_written(motion, tmp_path):
 
 def test_poor_motion_and_no_overlap_refused(motion, tmp_path):
     film = motion["film"]
-    # the grasp recording was not filmed: another motion than the markers show
-    out = tmp_path / "cal.json"
-    r = tapcurve("calibrate", "--rig", motion["rig"], "--out", out, "--motion", motion["grasp"]["rec"], film["markers"])
-    assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
-    assert "the motion is too poor to align" in r.stderr or "no overlap in time" in r.stderr
-    assert f"{motion['grasp']['rec']}/{film['markers']}" in r.stderr
-    # the camera clock 1000 s away: no overlap in time
+    out, out_apart = tmp_path / "cal.json", tmp_path / "cal_apart.json"
+    # the camera clock 1000 s away (below): no overlap in time
     lines = film["markers"].read_text().splitlines()
     shifted = tmp_path / "shifted.csv"
     shifted.write_text("\n".join([lines[0]] + [f"{float(r.split(',')[0]) + 1000:.6f}," + r.split(",", 1)[1]
                                                for r in lines[1:]]) + "\n")
-    r = tapcurve("calibrate", "--rig", motion["rig"], "--out", out, "--motion", film["rec"], shifted)
+    with ThreadPoolExecutor(max_workers=2) as pool:  # two refusals, side by side, each with its own output
+        # the grasp recording was not filmed: another motion than the markers show
+        poor = pool.submit(tapcurve, "calibrate", "--rig", motion["rig"], "--out", out, "--motion",
+                           motion["grasp"]["rec"], film["markers"])
+        apart = pool.submit(tapcurve, "calibrate", "--rig", motion["rig"], "--out", out_apart, "--motion",
+                            film["rec"], shifted)
+        poor, apart = poor.result(), apart.result()
+    r = poor
+    assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+    assert "the motion is too poor to align" in r.stderr or "no overlap in time" in r.stderr
+    assert f"{motion['grasp']['rec']}/{film['markers']}" in r.stderr
+    r = apart
     assert r.returncode == 2 and "no overlap in time" in r.stderr and len(r.stderr.strip().splitlines()) == 1
-    assert not out.exists() and not out.with_suffix(".svg").exists()
+    for o in (out, out_apart):
+        assert not o.exists() and not o.with_suffix(".svg").exists()
 
 
 def test_never_writes_over_a_recording(motion):
@@ -170,11 +149,9 @@ def test_alignment_on_the_virtual_film(long_motion, tmp_path, offset_s, rate_ppm
 
 @pytest.fixture(scope="module")
 def calibrated(motion):
-    out = motion["dir"] / "cal.json"
-    film = motion["film"]
-    r = tapcurve("calibrate", "--rig", motion["rig"], "--out", out, "--motion", film["rec"], film["markers"])
-    assert r.returncode == 0, r.stderr
-    return out, r.stdout
+    """``tapcurve calibrate --rig RIG --out cal.json --motion free.h5 free.csv``, run once with the film
+    (``filmed_motion``): the calibration's path and the command's stdout."""
+    return motion["cal"], motion["calibrate_stdout"]
 
 
 def test_report_states_the_alignment(calibrated):
@@ -210,10 +187,10 @@ def test_report_picture_parses_and_holds_the_series(calibrated, motion):
     assert any(p.get("class") == "recording" for p in root.iter(f"{SVG}polyline"))
 
 
-def test_tip_accuracy_from_motion_alone(calibrated, motion):
+def test_tip_accuracy_from_motion_alone(calibrated, motion, tmp_path):
     out, _ = calibrated
     grasp = motion["grasp"]
-    processed = motion["dir"] / "grasp_processed.h5"
+    processed = tmp_path / "grasp_processed.h5"
     r = tapcurve("process", grasp["rec"], "--calibration", out, "--out", processed, "--quiet")
     assert r.returncode == 0, r.stderr
     with h5py.File(grasp["rec"], "r") as f:

@@ -85,7 +85,7 @@ def test_file_size_limit_stops_recording_cleanly(tmp_path):
     try:
         assert vf.wait_ready(timeout_s=10)
         out = tmp_path / "full.h5"
-        limit = 1_500_000
+        limit = 500_000  # reached within seconds at 5 kHz, still far more than 5000 frames in
 
         def small_files():
             resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
