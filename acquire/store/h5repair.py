@@ -4,7 +4,8 @@ HDF5 marks a file open for (SWMR) writing in the superblock's file
 consistency flags and clears them on a clean close. A recorder that was killed
 leaves them set, and HDF5 then refuses to open the file normally. The data up
 to the last flush is intact, so clearing the flags (what HDF5's own ``h5clear
--s`` tool does) is all the repair needed. Done here in Python so a user needs
+-s`` tool does) is the repair, with the end-of-allocation address raised to
+the file's size where a flush was cut short (``h5clear --increment``). Done here in Python so a user needs
 no extra tool: superblock versions 2 and 3 hold the flags at byte 11 and end
 with a Jenkins lookup3 checksum over the bytes before it (HDF5 File Format
 Specification, version 3.0, section II.A "Superblock").
@@ -116,12 +117,33 @@ def writer_alive(path: str | os.PathLike) -> bool:
         os.close(fd)
 
 
+def _raise_eoa(body: bytearray, file_size: int) -> None:
+    """Set the superblock's end-of-file address to at least the file's size (in place).
+
+    A writer killed during a flush may have written data and the metadata that
+    points to it, but not yet the larger end-of-allocation address: HDF5 then
+    refuses to read past it ("addr overflow"). What ``h5clear --increment``
+    does, without the extra margin: the bytes are on disk, the address only
+    has to admit them. Field order (HDF5 File Format Specification 3.0, II.A,
+    superblock v2/v3): base address, extension address, end-of-file address,
+    root object header address, each ``size of offsets`` bytes, little-endian.
+    """
+    size_offsets = body[9]
+    base_at, eoa_at = 12, 12 + 2 * size_offsets
+    base = int.from_bytes(body[base_at:base_at + size_offsets], "little")
+    eoa = int.from_bytes(body[eoa_at:eoa_at + size_offsets], "little")
+    wanted = file_size - base  # addresses are relative to the base address
+    if wanted > eoa:
+        body[eoa_at:eoa_at + size_offsets] = wanted.to_bytes(size_offsets, "little")
+
+
 def clear_write_flags(path: str | os.PathLike) -> bool:
     """Clear the open-for-writing flags of an unclosed file; True if anything changed.
 
     Only call this when no writer is alive (:func:`writer_alive`). The
     checksum is verified before the patch, so a damaged superblock is left
-    untouched (``ValueError``).
+    untouched (``ValueError``). The end-of-allocation address is raised to the
+    file's size where a killed flush left it short (:func:`_raise_eoa`).
     """
     with open(path, "r+b") as fh:
         offset, body, stored = _superblock(fh)
@@ -129,7 +151,10 @@ def clear_write_flags(path: str | os.PathLike) -> bool:
             raise ValueError("superblock checksum does not match: not repairing")
         if body[11] == 0:
             return False
-        patched = body[:11] + b"\x00" + body[12:]
+        patched = bytearray(body)
+        patched[11] = 0
+        _raise_eoa(patched, os.fstat(fh.fileno()).st_size)
+        patched = bytes(patched)
         fh.seek(offset)
         fh.write(patched + struct.pack("<I", lookup3(patched)))
         fh.flush()

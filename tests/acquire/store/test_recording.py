@@ -64,6 +64,39 @@ def test_lookup3_matches_hdf5_superblock(tmp_path):
     assert lookup3(body) == stored
 
 
+def test_repair_admits_data_past_a_short_end_of_allocation(tmp_path):
+    # A writer killed in a flush can leave data (and the metadata pointing to it) past the end-of-file
+    # address it last wrote to the superblock: HDF5 then refuses to read it ("addr overflow"), as seen
+    # once after a SIGKILL. Made here by patching a clean SWMR file's superblock (HDF5 File Format
+    # Specification 3.0, II.A: flags at byte 11, end-of-file address third of the addresses after byte 12).
+    import struct
+
+    from acquire.store.h5repair import _superblock, clear_write_flags
+
+    p = tmp_path / "k.h5"
+    with h5py.File(p, "w", libver="latest") as f:
+        d = f.create_dataset("x", shape=(0,), maxshape=(None,), chunks=(1000,), dtype="f8")
+        f.swmr_mode = True
+        for i in range(10):
+            d.resize((1000 * (i + 1),))
+            d[-1000:] = np.arange(1000) + i
+            f.flush()
+    with open(p, "r+b") as fh:
+        off, body, _ = _superblock(fh)
+        at, n = 12 + 2 * body[9], body[9]
+        eoa = int.from_bytes(body[at:at + n], "little")
+        assert eoa == p.stat().st_size  # a clean close leaves it at the file's end
+        cut = bytearray(body)
+        cut[11] = 0x05  # open for writing, SWMR
+        cut[at:at + n] = (eoa - 4000).to_bytes(n, "little")  # half of the last chunk beyond it
+        fh.seek(off)
+        fh.write(bytes(cut) + struct.pack("<I", lookup3(bytes(cut))))
+    assert clear_write_flags(p)
+    assert superblock_flags(p) == 0
+    with h5py.File(p, "r") as f:
+        np.testing.assert_array_equal(f["x"][-1000:], np.arange(1000) + 9)
+
+
 def test_layout_and_labels(tmp_path):
     ring = FrameRing(capacity_frames=10_000, n_channels=6)
     path = tmp_path / "r.h5"
