@@ -257,6 +257,7 @@ def main() -> int:
     ap.add_argument("--grasp-s", type=float, default=16.0, help="seconds of the grasp scenario (default 16)")
     ap.add_argument("--strip", choices=("real", "ideal", "both"), default="both", help="accuracy on which strip")
     ap.add_argument("--accuracy-only", action="store_true", help="skip the timing")
+    ap.add_argument("--timing-only", action="store_true", help="skip the accuracy (full-length timing)")
     args = ap.parse_args()
     rig = filmed_rig()
     figures = {}
@@ -267,7 +268,7 @@ def main() -> int:
             rig, {"static_us_per_frame": demo_calibration(rig, memory=False),
                   "memory_us_per_frame": demo_calibration(rig, memory=True)},
             seconds=args.session_s or (1.5 if args.quick else 10.0), repeats=1 if args.quick else 3)
-    if not args.quick:
+    if not (args.quick or args.timing_only):
         modes = ("real", "ideal") if args.strip == "both" else (args.strip,)
         figures["mean_tip_error_pct_of_length"] = accuracy(rig, hold_s=args.hold_s, motion_s=args.motion_s,
                                                            grasp_s=args.grasp_s, modes=modes)
