@@ -142,6 +142,7 @@ def solve_one_contact(out, n_seg: int, inv_sqrt_w, *, prior_prec: float, prior_m
     return [force, comp.imag.copy(), comp.real.copy(), sigma[:, 0], sigma[:, 1], rms, tangent]
 
 
+# long on purpose: one closed-form solve read top to bottom (half of it the docstring)
 def solve_contact(e, y, ct, inv_sqrt_w, *, prior_prec: float, prior_mean_n: float, friction, inflate: bool,
                   with_sigma: bool = True):
     """:func:`solve_stacked` for one contact point, in complex arithmetic (the live path's few operations).
