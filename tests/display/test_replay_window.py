@@ -112,12 +112,14 @@ def test_scrub_step_and_jump_to_labels(gui, qtbot, recording, file_frames, artif
         qtbot.waitUntil(lambda: w.current.seq == seq0 + 1, timeout=30000)
         w.step(-1)
         qtbot.waitUntil(lambda: w.current.seq == seq0, timeout=30000)
-        # drag the play head: the timeline asks for a time, the view shows the frame at or before it
+        # drag the play head: the timeline asks for a time from the recording's first frame (which a loaded
+        # machine may record later than device time 0), the view shows the frame at or before it
+        t = file_frames["t"]
         w.timeline.seek_requested.emit(2.0)
-        i = int(np.searchsorted(file_frames["t"], 2.0, side="right")) - 1
+        i = int(np.searchsorted(t, t[0] + 2.0, side="right")) - 1
         qtbot.waitUntil(lambda: w.current.seq == file_frames["seq"][i], timeout=30000)
         w.update_status()
-        assert w.timeline.head.value() == pytest.approx(file_frames["t"][i])
+        assert w.timeline.head.value() == pytest.approx(t[i] - t[0])
         assert "frame" in w.status_text() and "calibration" in w.status_text()
         w.resize(1366, 768)
         qtbot.wait(50)
