@@ -455,7 +455,10 @@ class SensorWindow(QtWidgets.QMainWindow):
         else:
             src = self.source
             self.timeline.set_extent(0.0, max(src.t_last_s - src.t_first_s, 1e-3))
-            self.timeline.set_head(src.position_s - src.t_first_s)
+            # the frame on screen, not the source's position: the replay thread moves its position after it
+            # hands frames to the view, so the two differ for a moment after a seek
+            shown = src.position_s if self.current is None else self.current.t_device_s
+            self.timeline.set_head(shown - src.t_first_s)
             labels = src.labels
             key = tuple((lab.text, lab.t_start_s, lab.t_end_s) for lab in labels)
             if key != self._labels_key:
@@ -470,7 +473,7 @@ class SensorWindow(QtWidgets.QMainWindow):
                     item.setData(QtCore.Qt.UserRole, lab.t_start_s)
                     self.label_list.addItem(item)
             _set_text(self.play_button, "❚❚ Pause" if src.playing else "▶ Play")
-            _set_text(self.time_label, f"{src.position_s - src.t_first_s:.3f} s")
+            _set_text(self.time_label, f"{shown - src.t_first_s:.3f} s")
 
     # -- live controls ----------------------------------------------------------------------------------------
     def _record_clicked(self) -> None:
