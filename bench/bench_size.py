@@ -33,6 +33,7 @@ from acquire.rig import load_rig  # noqa: E402
 from acquire.session import Session  # noqa: E402
 from acquire.sources.virtual import VirtualOptions  # noqa: E402
 from acquire.virtual.builtin import builtin_calibration  # noqa: E402
+from bench.live_cpu import thread_cpu_s as _thread_cpu_s  # noqa: E402
 
 BEFORE_RAW_B = 2 * 6 + 8 + 8 + 8 + 1
 BEFORE_DERIVED_B = 6 * 4 + 97 * 2 * 4
@@ -60,15 +61,6 @@ def _per_dataset(f: h5py.File, n: int) -> dict[str, float]:
 
     f.visititems(add)
     return {k: v for k, v in sorted(sizes.items()) if v >= 0.05}
-
-
-def _thread_cpu_s(native_id: int | None) -> float:
-    """CPU time (user + system, s) of one thread of this process, from /proc (Linux); NaN elsewhere."""
-    try:
-        fields = Path(f"/proc/self/task/{native_id}/stat").read_text().rsplit(")", 1)[1].split()
-        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
-    except (OSError, ValueError, IndexError, TypeError):
-        return float("nan")
 
 
 def main(argv=None) -> dict:
