@@ -2,7 +2,9 @@
 
 Run by hand: ``.venv/bin/python bench/bench_live.py`` (``--quick`` for a short
 check). The built-in virtual finger sends 1,000 frames/s over its
-pseudo-terminal; the window redraws at 60 Hz on Qt's ``offscreen`` platform
+pseudo-terminal, in writes 8 ms apart (``--chunk-ms``; its default 20 ms would
+give a 60 Hz window a new frame at only ~50 of its redraws a second, and the
+window skips a redraw with nothing new); the window redraws at 60 Hz on Qt's ``offscreen`` platform
 (raster painting, as on a screen without GPU help). Figures, printed as JSON:
 
 - ``acquisition_cpu_cores``: process CPU with the session running and no
@@ -176,6 +178,7 @@ def main(argv=None) -> int:
     ap.add_argument("--seconds", type=float, default=None, help="measuring time per phase")
     ap.add_argument("--redraw-hz", type=float, default=60.0)
     ap.add_argument("--fixed", action="store_true", help="no adaptive redraw rate")
+    ap.add_argument("--chunk-ms", type=float, default=8.0, help="time between the virtual finger's writes")
     ap.add_argument("--no-load", action="store_true", help="leave out the recording with both cores loaded")
     ap.add_argument("--load-seconds", type=float, default=None,
                     help="length of the recording made with every core loaded (default 30 s, 3 s with --quick)")
@@ -191,7 +194,7 @@ def main(argv=None) -> int:
     rig = load_rig(None)
     cal = _calibration(rig)
     app = make_app()
-    session = LiveSession(rig=rig, calibration=cal, virtual_options=VirtualOptions(rate_hz=1000.0))
+    session = LiveSession(rig=rig, calibration=cal, virtual_options=VirtualOptions(rate_hz=1000.0, max_chunk_s=args.chunk_ms / 1e3))
     session.start()
     try:
         time.sleep(0.5)  # let the stream settle
@@ -229,6 +232,7 @@ def main(argv=None) -> int:
         "input_frames_per_s": round(status["frame_rate_hz"], 1),
         "frames_lost": status["frames_lost"],
         "redraw_hz_asked": args.redraw_hz,
+        "device_chunk_ms": args.chunk_ms,
         "redraws_per_s": round(drawn / win_wall, 1),
         "acquisition_cpu_cores": round(acq_cores, 3),
         "with_window_cpu_cores": round(total_cores, 3),

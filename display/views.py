@@ -12,27 +12,11 @@ import numpy as np
 import pyqtgraph as pg
 from PyQt5 import QtCore, QtGui, QtWidgets
 
+from .curves import LightCurve, TapMarks
 from .plot_cost import cache_axes, opaque_view, peak_envelope
 from .theme import COLOURS, series_colour
 
-__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline", "RedrawGovernor", "redraw_ladder",
-           "force_arrow_scale_m_per_n", "force_arrow_xy"]
-
-
-def _text_symbol(text: str) -> QtGui.QPainterPath:
-    """A scatter symbol drawing ``text`` just above and right of its point (symbol units: 1 = size px)."""
-    path = QtGui.QPainterPath()
-    font = QtGui.QFont("Sans")
-    font.setPointSizeF(10)
-    path.addText(0, 0, font, text)
-    box = path.boundingRect()
-    scale = 0.9 / max(box.height(), 1e-9)
-    tr = QtGui.QTransform()
-    tr.scale(scale, scale)
-    path = tr.map(path)
-    box = path.boundingRect()
-    # centred in the unit square: pyqtgraph draws a symbol into a pixmap of that size
-    return path.translated(-box.center().x(), -box.center().y())
+__all__ = ["ShapeView", "SegmentBars", "TraceView", "Timeline", "force_arrow_scale_m_per_n", "force_arrow_xy"]
 
 
 def _pen(colour, width=1.0, style=QtCore.Qt.SolidLine):
@@ -83,9 +67,9 @@ class ShapeView(pg.PlotWidget):
 
     Attributes
     ----------
-    sensor_curve, tip_curve : pg.PlotCurveItem
-        The sensor from tap 0 to its far end, and the unsensed tip beyond (bare curve
-        items: a PlotDataItem's bookkeeping per ``setData`` costs more than the curve).
+    sensor_curve, tip_curve : LightCurve
+        The sensor from tap 0 to its far end, and the unsensed tip beyond (light curve
+        items: pyqtgraph's curve items' bookkeeping per ``setData`` costs more than the curve).
     """
 
     def __init__(self, *, rig, reconstructor, parent=None):
@@ -120,29 +104,25 @@ class ShapeView(pg.PlotWidget):
         ref = pg.PlotDataItem([0.0, reach], [0.0, 0.0], pen=_pen(COLOURS["grid"], 1, QtCore.Qt.DotLine))
         plot.addItem(ref)
 
-        self.body_item = QtWidgets.QGraphicsPathItem()
-        fill = QtGui.QColor(*COLOURS["body_fill"])
-        self.body_item.setBrush(QtGui.QBrush(fill))
-        self.body_item.setPen(_pen(COLOURS["body_edge"], 1.2))
+        # bounds from the outline itself: a plain path item with a cosmetic pen counts the pen's width in
+        # metres, so every frame repainted the whole view
+        self.body_item = LightCurve(pen=_pen(COLOURS["body_edge"], 1.2),
+                                    brush=QtGui.QBrush(QtGui.QColor(*COLOURS["body_fill"])))
         plot.addItem(self.body_item)
         # the tip's recent path: three fixed layers, older ones fainter (one pen each: a per-point brush
         # list made the trail the costliest item of a redraw)
         r, g, bl = COLOURS["trail"]
-        self.trail_layers = [pg.PlotCurveItem(pen=_pen((r, g, bl, a), 2), antialias=True) for a in (45, 110, 220)]
+        self.trail_layers = [LightCurve(pen=_pen((r, g, bl, a), 2), antialias=True) for a in (45, 110, 220)]
         for item in self.trail_layers:
             plot.addItem(item)
-        self.tip_curve = pg.PlotCurveItem(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
+        self.tip_curve = LightCurve(pen=_pen(COLOURS["tip"], 2, QtCore.Qt.DashLine), antialias=True)
         plot.addItem(self.tip_curve)
-        self.sensor_curve = pg.PlotCurveItem(pen=_pen(COLOURS["sensor"], 3), antialias=True)
+        self.sensor_curve = LightCurve(pen=_pen(COLOURS["sensor"], 3), antialias=True)
         plot.addItem(self.sensor_curve)
-        self.taps = pg.ScatterPlotItem(
-            size=7, pen=_pen(COLOURS["tap_edge"], 1), brush=pg.mkBrush(COLOURS["tap"]), antialias=True
-        )
+        self.taps = TapMarks(labels=range(len(self.tap_index)), pen=_pen(COLOURS["tap_edge"], 1),
+                             brush=pg.mkBrush(COLOURS["tap"]), text_colour=COLOURS["muted"])
         plot.addItem(self.taps)
-        # tap numbers as scatter symbols (cached pixmaps): far cheaper per frame than text items
-        self.tap_labels = pg.ScatterPlotItem(size=11, pen=None, brush=pg.mkBrush(COLOURS["muted"]), antialias=True)
-        plot.addItem(self.tap_labels)
-        self.force_arrow = pg.PlotCurveItem(pen=_pen(COLOURS["caution"], 2.5), connect="pairs", antialias=True)
+        self.force_arrow = LightCurve(pen=_pen(COLOURS["caution"], 2.5), connect="pairs", antialias=True)
         plot.addItem(self.force_arrow)
         # the arrow's scale and value, stated in the view (a label over it, like the message)
         self.force_label = QtWidgets.QLabel("", self)
@@ -151,7 +131,6 @@ class ShapeView(pg.PlotWidget):
         self.force_label.setVisible(False)
         self.force_scale_m_per_n = None
         self._arrow_shown = False
-        self._label_symbols = [_text_symbol(str(j)) for j in range(len(self.tap_index))]
         self.message = ""
         # a label over the view, not in it: it stays put when the user pans or zooms
         self.message_label = QtWidgets.QLabel("", self)
@@ -236,8 +215,7 @@ class ShapeView(pg.PlotWidget):
             self.sensor_curve.setData([], [])
             self.tip_curve.setData([], [])
             self.taps.setData([], [])
-            self.tap_labels.setData([], [])
-            self.body_item.setPath(QtGui.QPainterPath())
+            self.body_item.setData([], [])
             self._show_trail(None)
             return
         e = self.end_index
@@ -246,16 +224,10 @@ class ShapeView(pg.PlotWidget):
             self.tip_curve.setData(xy_m[e:, 0], xy_m[e:, 1])
         taps = xy_m[self.tap_index]
         self.taps.setData(taps[:, 0], taps[:, 1])
-        # beside the tap, a fixed number of pixels up and right whatever the zoom
-        px, py = self.getPlotItem().getViewBox().viewPixelSize()
-        self.tap_labels.setData(taps[:, 0] + 7 * px, taps[:, 1] + 9 * py, symbol=self._label_symbols)
         if outline_xy_m is not None and np.isfinite(outline_xy_m).all():
-            path = pg.arrayToQPath(outline_xy_m[:, 0], outline_xy_m[:, 1])
-            path.closeSubpath()
-            path.setFillRule(QtCore.Qt.WindingFill)  # the fold of a tight inner offset stays filled
-            self.body_item.setPath(path)
+            self.body_item.setData(outline_xy_m[:, 0], outline_xy_m[:, 1])
         else:
-            self.body_item.setPath(QtGui.QPainterPath())
+            self.body_item.setData([], [])
         self._show_trail(trail_xy_m)
 
     def _show_trail(self, trail_xy_m) -> None:
@@ -331,9 +303,9 @@ class SegmentBars(pg.PlotWidget):
         self.bars.setOpts(width=v, brushes=brushes)
 
 
-def _curve(plot, colour, name: str, *, skip_finite_check: bool = False) -> pg.PlotCurveItem:
-    """A trace curve on ``plot``, 1 px, in its legend when it has one (GUI thread)."""
-    curve = pg.PlotCurveItem(pen=_pen(colour, 1), name=name, skipFiniteCheck=skip_finite_check)
+def _curve(plot, colour, name: str | None, *, width: float = 1.0) -> LightCurve:
+    """A trace curve on ``plot`` (NaN breaks the line), in its legend when it has one (GUI thread)."""
+    curve = LightCurve(pen=_pen(colour, width), name=name, connect="finite")
     plot.addItem(curve)
     return curve
 
@@ -381,8 +353,8 @@ class TraceView(pg.GraphicsLayoutWidget):
                                              labelTextSize="7pt")
         self.bottom_legend = self.bottom.addLegend(offset=(4, 2), labelTextColor=COLOURS["muted"], colCount=8,
                                                    labelTextSize="7pt")
-        # bare curve items: a PlotDataItem's extra bookkeeping per setData is a third of a trace redraw
-        self.code_curves = [_curve(self.top, series_colour(k), f"{k}:{name}", skip_finite_check=True)
+        # light curve items (display/curves.py): pyqtgraph's own redo their bounds at every repaint
+        self.code_curves = [_curve(self.top, series_colour(k), f"{k}:{name}")
                             for k, name in enumerate(self.channel_names)]
         self.res_curves = [_curve(self.top, series_colour(k), f"seg {k}") for k in range(self.n_seg)]
         self.curv_curves = [_curve(self.bottom, series_colour(k), f"seg {k}") for k in range(self.n_seg)]
@@ -409,7 +381,7 @@ class TraceView(pg.GraphicsLayoutWidget):
         plot.setXLink(self.top)
         plot.setMaximumHeight(110)
         cache_axes(plot)
-        return plot, plot.plot(pen=_pen(colour, 1.2))
+        return plot, _curve(plot, colour, None, width=1.2)
 
     def set_extras(self, *, force: bool, actuation_unit: str | None) -> None:
         """Show the force row (|F|, N) and the actuation row (in ``actuation_unit``; None: no row)."""
@@ -475,20 +447,20 @@ class TraceView(pg.GraphicsLayoutWidget):
         if self.mode == "codes":
             y = peak_envelope(snap.trace_codes, g)
             for k, c in enumerate(self.code_curves):
-                c.setData(x, y[:, k])
+                c.setData(x, y[:, k], connect="all")
         else:
             y = peak_envelope(snap.trace_resistance_ohm, g)
             for k, c in enumerate(self.res_curves):
-                c.setData(x, y[:, k], connect="finite")
+                c.setData(x, y[:, k])
         if self.calibrated and snap.trace_curvature_per_m is not None:
             y = peak_envelope(snap.trace_curvature_per_m, g)
             for k, c in enumerate(self.curv_curves):
-                c.setData(x, y[:, k], connect="finite")
+                c.setData(x, y[:, k])
         for shown, values, curve in ((self.extras[0], getattr(snap, "trace_force_n", None), self.force_curve),
                                      (self.extras[1] is not None, getattr(snap, "trace_actuation", None),
                                       self.act_curve)):
             if shown and values is not None:
-                curve.setData(x, peak_envelope(values[:, None], g)[:, 0], connect="finite")
+                curve.setData(x, peak_envelope(values[:, None], g)[:, 0])
 
 
 class Timeline(pg.PlotWidget):
@@ -572,123 +544,3 @@ class Timeline(pg.PlotWidget):
         t = vb.mapSceneToView(event.scenePos()).x()
         t0, t1 = self._extent
         self.seek_requested.emit(float(min(max(t, t0), t1)))
-
-
-class RedrawGovernor:
-    """The redraw rate the window can afford: steps down when the GUI thread is loaded or late, back up when idle.
-
-    Pure bookkeeping, fed timings by the window (and by tests, synthetic
-    ones): at every redraw tick, the monotonic time and the GUI thread's CPU
-    time. Two signals, smoothed over the last ~10 ticks:
-
-    - *load*: GUI-thread CPU per wall second (cores). Above ``budget_cores``
-      the window would take more than its share: on a two-core laptop at
-      1 kHz, the reader, processing and recorder threads and the OS need the
-      rest (a 40 % budget; common practice, no source);
-    - *lateness*: how much later than its interval the timer fired, in
-      intervals. A timer that fires a quarter of an interval late, on
-      average, means the machine does not give the GUI thread the CPU when
-      asked (busy with others), so drawing more often only queues work.
-
-    Either over its limit for ``hold_down_s`` steps the rate down the ladder
-    (60 -> 30 -> 20 -> 15 Hz). Stepping up needs the load *predicted* at the
-    higher rate under ``up_share`` of the budget and the lateness under half
-    its limit, without a break for ``hold_up_s``: the gap between the
-    thresholds is the hysteresis that keeps the rate from flapping.
-
-    Parameters
-    ----------
-    rates_hz : sequence of float
-        The ladder, highest first.
-    budget_cores : float
-        GUI-thread load allowed, cores.
-    late_limit : float
-        Smoothed lateness, in intervals, that counts as busy.
-    up_share : float
-        Share of the budget the predicted load must stay under to step up.
-    hold_down_s, hold_up_s : float
-        Time since the last change before stepping down / up, s.
-    warmup_s : float
-        No step in the first seconds: the first paints fill caches and cost
-        more than the ones that follow.
-
-    Attributes
-    ----------
-    load_cores, lateness : float
-        The smoothed signals.
-    """
-
-    def __init__(self, *, rates_hz=(60.0, 30.0, 20.0, 15.0), budget_cores: float = 0.4,
-                 late_limit: float = 0.25, up_share: float = 0.6, hold_down_s: float = 1.0,
-                 hold_up_s: float = 4.0, warmup_s: float = 2.0):
-        self.rates_hz = tuple(float(r) for r in rates_hz)
-        self.budget_cores = float(budget_cores)
-        self.late_limit = float(late_limit)
-        self.up_share = float(up_share)
-        self.hold_down_s = float(hold_down_s)
-        self.hold_up_s = float(hold_up_s)
-        self.warmup_s = float(warmup_s)
-        self.level = 0
-        self.load_cores = 0.0
-        self.lateness = 0.0
-        self._last = None
-        self._changed_s = None
-        self._calm_s = None  # since when stepping up would be allowed
-
-    @property
-    def rate_hz(self) -> float:
-        return self.rates_hz[self.level]
-
-    @property
-    def interval_s(self) -> float:
-        return 1.0 / self.rate_hz
-
-    def status(self) -> str:
-        """Empty at the full rate, else e.g. ``redraw 30 Hz: machine busy``."""
-        return "" if self.level == 0 else f"redraw {self.rate_hz:g} Hz: machine busy"
-
-    def tick(self, *, now_s: float, cpu_s: float) -> bool:
-        """Account one redraw tick; True when the rate changed (read :attr:`rate_hz`)."""
-        if self._last is None:
-            self._last = (now_s, cpu_s)
-            self._changed_s = now_s + self.warmup_s - self.hold_down_s  # the first step-down after the warm-up
-            return False
-        wall = now_s - self._last[0]
-        busy = cpu_s - self._last[1]
-        self._last = (now_s, cpu_s)
-        if wall <= 0:
-            return False
-        alpha = 0.1  # ~10 ticks of memory
-        self.load_cores += alpha * (busy / wall - self.load_cores)
-        late = max(0.0, wall - self.interval_s) / self.interval_s
-        self.lateness += alpha * (late - self.lateness)
-        busy_now = self.load_cores > self.budget_cores or self.lateness > self.late_limit
-        if busy_now and self.level + 1 < len(self.rates_hz) and now_s - self._changed_s >= self.hold_down_s:
-            return self._step(+1, now_s)
-        if self.level > 0 and self._calm(now_s) and now_s - self._calm_s >= self.hold_up_s:
-            return self._step(-1, now_s)
-        return False
-
-    def _calm(self, now_s: float) -> bool:
-        predicted = self.load_cores * self.rates_hz[self.level - 1] / self.rate_hz
-        calm = predicted < self.up_share * self.budget_cores and self.lateness < 0.5 * self.late_limit
-        if not calm:
-            self._calm_s = None
-        elif self._calm_s is None:
-            self._calm_s = now_s
-        return calm
-
-    def _step(self, direction: int, now_s: float) -> bool:
-        old = self.rate_hz
-        self.level += direction
-        # the load scales with the rate; the lateness is measured afresh at the new interval
-        self.load_cores *= self.rate_hz / old
-        self.lateness = 0.0
-        self._changed_s = now_s
-        self._calm_s = None
-        return True
-
-
-def redraw_ladder(redraw_hz: float) -> tuple[float, ...]:
-    """The rates a window asked to redraw at ``redraw_hz`` may step down to: itself, then 30, 20, 15 Hz below it."""
-    return (float(redraw_hz),) + tuple(r for r in (30.0, 20.0, 15.0) if r < redraw_hz)

@@ -22,8 +22,8 @@ from acquire.core.reconstruct import body_outline
 
 from .drift_readout import DriftControls
 from .theme import COLOURS, STYLE_SHEET
-from .views import (RedrawGovernor, SegmentBars, ShapeView, Timeline, TraceView, force_arrow_scale_m_per_n,
-                    redraw_ladder)
+from .governor import RedrawGovernor, redraw_ladder
+from .views import SegmentBars, ShapeView, Timeline, TraceView, force_arrow_scale_m_per_n
 
 __all__ = ["SensorWindow", "SAFETY_TEXT", "ABOUT_TEXT", "SPEEDS"]
 

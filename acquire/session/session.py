@@ -284,7 +284,7 @@ class Session:
             vo.faults.check(self.rig)
         self.virtual = VirtualFinger(
             rig=self.rig, rate_hz=vo.rate_hz, seed=vo.seed, hold=vo.hold, scenario=vo.scenario, faults=vo.faults,
-            strip=vo.strip, mechanics=vo.mechanics,
+            strip=vo.strip, mechanics=vo.mechanics, max_tick_s=vo.max_chunk_s,
         )
         self.virtual.start()
         return self.virtual.path

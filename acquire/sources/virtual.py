@@ -30,6 +30,9 @@ class VirtualOptions:
         Real strip behaviour (creep, hysteresis, drift; the finger's default) or ideal.
     mechanics : dict or None
         Bending stiffness, actuation gain and pressure of the simulated finger.
+    max_chunk_s : float
+        Longest time between the finger's writes to its port, wall s (it
+        writes the frames due in chunks; benchmarks shorten it).
     """
 
     rate_hz: float = 1000.0
@@ -39,6 +42,7 @@ class VirtualOptions:
     faults: object = None
     strip: object = None
     mechanics: object = None
+    max_chunk_s: float = 0.02
 
 
 # ----------------------------------------------------------------------------- the feed
