@@ -139,7 +139,7 @@ class TapMarks(LightCurve):
     labels : sequence of str
         One per point, in order.
     pen, brush : the dots' edge and fill.
-    text_colour : QtGui.QColor
+    text_colour : anything pyqtgraph.mkColor takes
     """
 
     _RADIUS_PX = 3.5
@@ -148,7 +148,7 @@ class TapMarks(LightCurve):
         super().__init__(pen=pen, antialias=True)
         self.labels = [str(t) for t in labels]
         self.dot_brush = brush
-        self.text_pen = QtGui.QPen(QtGui.QColor(text_colour))
+        self.text_pen = pg.mkPen(text_colour)
         self.font = QtGui.QFont("Sans")
         self.font.setPixelSize(11)
 
