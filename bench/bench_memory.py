@@ -16,7 +16,8 @@
   holds and with that film alone (no holds), then the grasp scenario processed causally; mean
   tip error in % of the sensor length against the finger's own truth (as in
   tests/acquire/test_end_to_end_accuracy.py), for a real strip (creep,
-  hysteresis, drift: the virtual finger's defaults) and an ideal one.
+  hysteresis, drift: the virtual finger's defaults) and an ideal one; the
+  finger's made-up sessions from ``--seed`` (default 7).
 
 Run by hand: ``.venv/bin/python bench/bench_memory.py`` (``--quick``: timing only, short).
 Prints figures as JSON.
@@ -128,12 +129,14 @@ def filmed_rig():
     return parse_rig(text, source="bench rig with markers")
 
 
-def finger_sessions(rig, strip: StripSettings, *, hold_s: float, settle_s: float, motion_s: float, grasp_s: float):
+def finger_sessions(rig, strip: StripSettings, *, hold_s: float, settle_s: float, motion_s: float, grasp_s: float,
+                    seed: int = 7):
     """One strip in three sessions, each a new run of the virtual device (its clock from 0, the strip at
     rest, as ``tapcurve record`` on a new virtual finger): labelled holds, a free motion (filmed), the
-    grasp scenario (a different motion). Codes, times, labels; the free model; the grasp's truth."""
-    base = FingerModel(rig=rig, seed=7)
-    free = FingerModel(rig=rig, seed=7, scenario="free")
+    grasp scenario (a different motion). Codes, times, labels; the free model; the grasp's truth.
+    ``seed``: the virtual finger's seed (its made-up motions and noise)."""
+    base = FingerModel(rig=rig, seed=seed)
+    free = FingerModel(rig=rig, seed=seed, scenario="free")
 
     def stream():
         return None if not strip.real else base.real_strip(strip).stream(rate_hz=RATE_HZ)
@@ -179,10 +182,11 @@ def tip_error_pct(rig, cal, codes, truth) -> float:
     return 100.0 * float(np.mean(np.hypot(*(tip - truth["tip_xy_m"]).T))) / float(pipe.s_m[tap_end])
 
 
-def session_files(folder: Path, rig, strip: StripSettings, *, hold_s: float, motion_s: float, grasp_s: float):
+def session_files(folder: Path, rig, strip: StripSettings, *, hold_s: float, motion_s: float, grasp_s: float,
+                  seed: int = 7):
     """:func:`finger_sessions` written as the user would have them: the holds recording, the motion
     recording and its marker CSV (paths), and the grasp's codes and truth (to process and compare)."""
-    ses = finger_sessions(rig, strip, hold_s=hold_s, settle_s=0.3, motion_s=motion_s, grasp_s=grasp_s)
+    ses = finger_sessions(rig, strip, hold_s=hold_s, settle_s=0.3, motion_s=motion_s, grasp_s=grasp_s, seed=seed)
     holds_path, rec_path, csv_path = (folder / f"{name}_{strip.mode}{ext}" for name, ext in
                                       (("holds", ".h5"), ("motion", ".h5"), ("markers", ".csv")))
     write_recording(holds_path, rig, ses["holds"][0], ses["holds"][2])
@@ -202,13 +206,13 @@ def _memory_summary(rep) -> dict:
                                     for s in rep.segments]}
 
 
-def accuracy(rig, *, hold_s: float, motion_s: float, grasp_s: float, modes=("real", "ideal")) -> dict:
+def accuracy(rig, *, hold_s: float, motion_s: float, grasp_s: float, modes=("real", "ideal"), seed: int = 7) -> dict:
     """Mean tip error on the grasp, % of length: holds alone and holds plus a filmed motion, static and memory."""
     out = {}
     with tempfile.TemporaryDirectory() as d:
         for mode in modes:
             holds_path, rec_path, csv_path, grasp, truth = session_files(
-                Path(d), rig, StripSettings(mode=mode), hold_s=hold_s, motion_s=motion_s, grasp_s=grasp_s)
+                Path(d), rig, StripSettings(mode=mode), hold_s=hold_s, motion_s=motion_s, grasp_s=grasp_s, seed=seed)
             fig = {}
             t0 = time.perf_counter()
             run = calibrate_files([holds_path], rig=rig)
@@ -256,6 +260,7 @@ def main() -> int:
     ap.add_argument("--motion-s", type=float, default=40.0, help="seconds of the filmed free motion (default 40)")
     ap.add_argument("--grasp-s", type=float, default=16.0, help="seconds of the grasp scenario (default 16)")
     ap.add_argument("--strip", choices=("real", "ideal", "both"), default="both", help="accuracy on which strip")
+    ap.add_argument("--seed", type=int, default=7, help="the virtual finger's seed for the accuracy (default 7)")
     ap.add_argument("--accuracy-only", action="store_true", help="skip the timing")
     ap.add_argument("--timing-only", action="store_true", help="skip the accuracy (full-length timing)")
     args = ap.parse_args()
@@ -271,7 +276,8 @@ def main() -> int:
     if not (args.quick or args.timing_only):
         modes = ("real", "ideal") if args.strip == "both" else (args.strip,)
         figures["mean_tip_error_pct_of_length"] = accuracy(rig, hold_s=args.hold_s, motion_s=args.motion_s,
-                                                           grasp_s=args.grasp_s, modes=modes)
+                                                           grasp_s=args.grasp_s, modes=modes,
+                                                           seed=args.seed)
     print(json.dumps(figures, indent=2))
     return 0
 
