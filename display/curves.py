@@ -130,8 +130,8 @@ class LightCurve(pg.GraphicsObject):
 class TapMarks(LightCurve):
     """Dots at points with a number beside each, sized in pixels whatever the zoom.
 
-    Drawn in device pixels (the dots 7 px across, the numbers 7 px right of
-    and above their dot), so no per-point symbol pixmaps are made or looked
+    Drawn in device pixels (the dots 7 px across, each number just right of
+    and above its dot), so no per-point symbol pixmaps are made or looked
     up: one item for what took two scatter items.
 
     Parameters
