@@ -11,8 +11,9 @@ Identification
 *From labelled holds* (always there): each hold starts with a step (the
 finger goes onto the next jig); the transient that follows gives the creep
 gain and time constant (:func:`acquire.core.memory_fit.fit_creep_steps`).
-Holds are all approached the same way and never unload along a loop, so they
-say nothing about hysteresis.
+Bent holds are all approached from flat, so alone they say nothing about
+hysteresis; the flat holds after bends to either side do, and join the
+motion's hysteresis fit (below).
 
 *From motion sessions* (:class:`MotionSeries`: filtered resistance and a
 reference curvature per frame, e.g. from filmed markers): the reference is
@@ -21,7 +22,13 @@ signal ``u``. Creep comes from the holds where they identified it, else from
 the motion (:func:`acquire.core.memory_fit.fit_memory`). The hysteresis is
 fitted as the compensator, from the reading with the creep taken out to ``u``
 (:mod:`acquire.core.memory_invfit`): a film's noise is on ``u``, the side
-least squares averages. The reference is first moved in time by the lag that
+least squares averages. The flat holds join that fit (static signal 0,
+:func:`_hold_rows`), the film keeping an offset of its own: a free motion
+seldom reverses the largest loops, and without them the plays took the
+offset between the film's flat and the holds' for hysteresis, the law's flat
+resistance followed, and the rounds below drifted instead of settling (on the
+virtual finger, seed 9: flat resistance 5 to 8 % low in two segments after 12
+rounds, band still growing). The reference is first moved in time by the lag that
 fits best (a film aligned on a creeping reading is tens of ms late, which a
 fit would take for hysteresis).
 
@@ -94,6 +101,7 @@ from acquire.core.memory_steps import (
     SegmentMemoryReport,
     compensate_holds,
     hold_steps,
+    holds_without_creep,
     rms_per_segment,
     unit_scale,
 )
@@ -320,14 +328,40 @@ def _motion_arrays(law: Calibration, motion: Sequence[MotionSeries], *, lag_s: f
     return u, x, k, r, float(np.median(rates))
 
 
-def _motion_lag(law, motion, creep) -> float:
+def _hold_rows(law, holds, gains, taus) -> list:
+    """The flat holds as rows of the hysteresis fit: per recording (creep taken out (M, S), static signal
+    (M, S): 0 on the flat holds' frames, NaN elsewhere), at about :data:`_FIT_RATE_HZ` frames per second.
+
+    Flat is the one curvature the holds meet from both sides (after the largest bend, after the
+    opposite bend): their readings differ by the hysteresis of large moves, which a free motion
+    seldom reverses fully, and their static signal is 0 whatever the law. Bent holds are not used:
+    the law is fitted to them, so they would only hold the memory where it is.
+    """
+    creep = StripMemory([SegmentMemory(creep_gains=[g], creep_taus_s=[tau]) if g else SegmentMemory()
+                         for g, tau in zip(gains, taus)])
+    out = []
+    for series in holds:
+        t = np.asarray(series.t_s, float)
+        y = holds_without_creep(creep, t, np.asarray(series.resistance_ohm, float) / law.r0_ohm - 1.0,
+                                series.holds, rate_hz=series.rate_hz)
+        u = np.full(y.shape, np.nan)
+        for span in series.holds:
+            flat = np.asarray(span.reference_per_m, float) == 0.0
+            u[np.searchsorted(t, span.t_start_s, "left"):np.searchsorted(t, span.t_end_s, "right"), flat] = 0.0
+        k = max(1, int(series.rate_hz // _FIT_RATE_HZ))
+        out.append((fill_gaps(t, y)[::k], u[::k]))
+    return out
+
+
+def _motion_lag(law, motion, creep, holds=()) -> float:
     """The reference's lag, s: the one of _LAGS_S (refined) that leaves the hysteresis fit the least residual."""
     gains, taus = creep_terms(creep.gains, creep.taus_s)
+    rows = _hold_rows(law, holds, gains, taus)
 
     def sse(lag):
         u, x, _, _, rate = _motion_arrays(law, motion, lag_s=lag)
         u, x, rate, _ = decimate(u, x, rate_hz=rate, target_hz=_FIT_RATE_HZ)
-        return fit_hysteresis(u, x, rate_hz=rate, creep_gains=gains, creep_taus_s=taus)[1]
+        return fit_hysteresis(u, x, rate_hz=rate, creep_gains=gains, creep_taus_s=taus, holds=rows)[1]
 
     return best_lag(sse, _LAGS_S)
 
@@ -378,16 +412,17 @@ def _motion_creep(u, x, rate_hz, creep, taus_s=DEFAULT_TAUS_S):
     return gains, taus, source, warns
 
 
-def _fit_motion(u, x, rate_hz, creep_found):
+def _fit_motion(u, x, rate_hz, creep_found, hold_rows=()):
     """(StripMemory, per-segment (creep source, band %, warnings), n_train) from a motion stream.
 
     ``creep_found``: :func:`_motion_creep`'s answer. Hysteresis: the
     compensator fitted from the reading with that creep taken out to the
-    reference (:mod:`acquire.core.memory_invfit`).
+    reference (:mod:`acquire.core.memory_invfit`), with ``hold_rows``
+    (:func:`_hold_rows`) fitted too.
     """
     u, x, rate, k = decimate(u, x, rate_hz=rate_hz, target_hz=_FIT_RATE_HZ)
     gains, taus, source, warns = creep_found
-    pis, _, n_train = fit_hysteresis(u, x, rate_hz=rate, creep_gains=gains, creep_taus_s=taus)
+    pis, _, n_train = fit_hysteresis(u, x, rate_hz=rate, creep_gains=gains, creep_taus_s=taus, holds=hold_rows)
     segs, info = [], []
     for s, (r, w) in enumerate(pis):
         c = [float(gains[s])] if gains[s] else []
@@ -415,12 +450,13 @@ def _with_motion(law0, holds, motion, creep, *, rig, degree):
     _, _, k, r, rate = _motion_arrays(law0, motion)
     law, _ = _law_with(law0, holds, memory, r, k, k.shape[0] - int(round(_HELDOUT * k.shape[0])), rate, rig=rig,
                        degree=degree)
-    lag = _motion_lag(law, motion, creep)
+    lag = _motion_lag(law, motion, creep, holds)
     bands, found = None, None
     for _ in range(_MAX_ROUNDS):
         u, x, k, r, rate = _motion_arrays(law, motion, lag_s=lag)
         found = found or _motion_creep(u, x, rate, creep)
-        memory, info, n_train = _fit_motion(u, x, rate, found)
+        rows = _hold_rows(law, holds, *creep_terms(found[0], found[1]))
+        memory, info, n_train = _fit_motion(u, x, rate, found, rows)
         law, report = _law_with(law0, holds, memory, r, k, n_train, rate, rig=rig, degree=degree)
         new = np.array([i[1] for i in info])
         if bands is not None and np.all(np.abs(new - bands) <= _BAND_SETTLED * np.maximum(np.abs(new), 1e-9)):

@@ -25,6 +25,14 @@ memory); the forward parameters follow from the same analytic inversion
 back to its forward operator) once the cumulative sums ``v_0 + ... + v_j``
 are positive (plays that break it are dropped, largest threshold first).
 
+Rows of other recordings can join the fit (:func:`fit_inverse_pi`'s ``extra``):
+the flat holds of a holds recording, met after bends to both sides, carry the
+hysteresis offset of large moves that a free motion seldom reverses fully
+(see :mod:`acquire.commands.calibrate_memory`). The session then keeps a free
+offset of its own, or the plays would absorb the offset between the film's
+flat and the holds' (measured on the virtual finger: the film's flat crossing
+1.4 to 1.5 % of r0 below the holds', even for the ideal strip).
+
 :func:`best_lag` picks the time shift between reading and reference that
 leaves the smallest residual: a clock alignment made on the raw reading of a
 strip that creeps is biased (creep delays the reading's centre of mass), and
@@ -50,7 +58,7 @@ INVERSE_FRACTIONS = (0.0125, 0.025, 0.0375, 0.05, 0.075, 0.1, 0.15, 0.2, 0.3)
 _V0_MIN = 1e-3  # v_0 lower bound relative to the static gain: the compensator's linear part stays positive
 
 
-def fit_inverse_pi(y: np.ndarray, u: np.ndarray, rows: np.ndarray, thresholds):
+def fit_inverse_pi(y: np.ndarray, u: np.ndarray, rows: np.ndarray, thresholds, extra=()):
     """Inverse PI ``u ~ sum v_j F_{q_j}[y]`` of one segment; returns (forward thresholds, forward weights, SSE).
 
     Parameters
@@ -63,6 +71,12 @@ def fit_inverse_pi(y: np.ndarray, u: np.ndarray, rows: np.ndarray, thresholds):
         Frames to fit (finite ``u``, the training part).
     thresholds : sequence of float
         Inverse play thresholds ``q_j``, increasing, units of y; 0 first.
+    extra : sequence of (ndarray (M,), ndarray (M,))
+        Other recordings of the same segment, each ``(y_b, u_b)`` as ``y`` and ``u`` (units of x):
+        the plays run over all of ``y_b`` (its own history), the frames with finite ``u_b`` are fitted
+        too. With any, the main rows get a free offset of ``u`` of their own (fitted, then dropped):
+        a filmed session's reference and its reading need not meet the other recordings' flat
+        resistance (:class:`acquire.core.calibration_fit.MotionPoints` keeps each session's own).
 
     Returns
     -------
@@ -74,11 +88,21 @@ def fit_inverse_pi(y: np.ndarray, u: np.ndarray, rows: np.ndarray, thresholds):
     q = np.asarray(thresholds, dtype=float)
     plays = PlayOperator(q[None, :]).process(y[:, None])[:, 0, :]
     a, b = plays[rows], u[rows]
+    n_main = a.shape[0]
     gain = float(np.dot(a[:, 0], b) / max(np.dot(a[:, 0], a[:, 0]), 1e-300))
+    for yb, known in extra:  # rows of other recordings: their own play history, their frames with a known u
+        known = np.asarray(known, float)
+        pb = PlayOperator(q[None, :]).process(np.asarray(yb, float)[:, None])[:, 0, :]
+        a, b = np.vstack([a, pb[np.isfinite(known)]]), np.concatenate([b, known[np.isfinite(known)]])
     lb, ub = np.full(q.size, -np.inf), np.zeros(q.size)
     lb[0], ub[0] = _V0_MIN * max(gain, 1e-12), np.inf
+    if len(extra):
+        # the main rows' own offset of u, free (sign and size): not part of the memory, dropped below
+        a = np.column_stack([a, np.arange(a.shape[0]) < n_main])
+        lb, ub = np.append(lb, -np.inf), np.append(ub, np.inf)
     v = optimize.lsq_linear(a, b, bounds=(lb, ub), method="bvls").x
     sse = float(np.sum((a @ v - b) ** 2))
+    v = v[:q.size]
     keep = np.concatenate(([True], v[1:] < -1e-9 * v[0]))  # plays with no weight are no plays
     q, v = q[keep], v[keep]
     while q.size > 1 and np.cumsum(v)[-1] <= 1e-6 * v[0]:  # invertible: every cumulative sum > 0
@@ -129,7 +153,8 @@ def best_lag(sse_of_lag, lags_s) -> float:
     return float(lags[i])
 
 
-def fit_hysteresis(u, x, *, rate_hz: float, creep_gains, creep_taus_s, heldout_fraction: float = 0.25):
+def fit_hysteresis(u, x, *, rate_hz: float, creep_gains, creep_taus_s, heldout_fraction: float = 0.25,
+                   holds=()):
     """Every segment's PI part fitted as the compensator (:func:`fit_inverse_pi`), creep taken out first.
 
     Parameters
@@ -144,6 +169,9 @@ def fit_hysteresis(u, x, *, rate_hz: float, creep_gains, creep_taus_s, heldout_f
         One creep term per segment (gain 0: none), time constants in s.
     heldout_fraction : float
         The last fraction of the frames is left out (for scoring by the caller).
+    holds : sequence of (ndarray (M, S), ndarray (M, S))
+        Other recordings as ``extra`` rows of :func:`fit_inverse_pi`: reading with the creep already
+        taken out, static signal (NaN where unknown); none: the motion alone.
 
     Returns
     -------
@@ -165,7 +193,8 @@ def fit_hysteresis(u, x, *, rate_hz: float, creep_gains, creep_taus_s, heldout_f
         if rows.sum() < 20 or not span > 0:
             out.append(((0.0,), (1.0,)))
             continue
-        r, w, sse = fit_inverse_pi(yf[:, s], u[:, s], rows, [0.0] + [f * span for f in INVERSE_FRACTIONS])
+        extra = [(yh[:, s], uh[:, s]) for yh, uh in holds if np.isfinite(uh[:, s]).any()]
+        r, w, sse = fit_inverse_pi(yf[:, s], u[:, s], rows, [0.0] + [f * span for f in INVERSE_FRACTIONS], extra)
         out.append((r, w))
         total += sse
     return out, total, n_train

@@ -16,7 +16,8 @@ import numpy as np
 from .memory import SegmentMemory, StripMemory
 from .memory_fit import HoldStep
 
-__all__ = ["hold_steps", "compensate_holds", "unit_scale", "rms_per_segment", "SegmentMemoryReport", "MemoryReport"]
+__all__ = ["hold_steps", "compensate_holds", "holds_without_creep",
+           "unit_scale", "rms_per_segment", "SegmentMemoryReport", "MemoryReport"]
 
 _SPEED_SMOOTH_S = 0.02  # moving average of the reading's speed when finding the move into a hold, s
 _MOVE_END_FRACTION = 0.1  # a move has ended when the speed falls below this fraction of its peak
@@ -94,6 +95,12 @@ def compensate_holds(memory: StripMemory, t_s, x, holds: Sequence, *, rate_hz: f
     rate_hz : float
         Frame rate, Hz.
     """
+    return memory.pi_operator().inverse().process(holds_without_creep(memory, t_s, x, holds, rate_hz=rate_hz))
+
+
+def holds_without_creep(memory: StripMemory, t_s, x, holds: Sequence, *, rate_hz: float) -> np.ndarray:
+    """The holds recording's ``x`` (N, S) with the creep of ``memory`` taken out and the moves between
+    holds kept monotone: what :func:`compensate_holds` passes to the inverse plays (new array)."""
     t = np.asarray(t_s, float)
     y = memory.relaxation(rate_hz=rate_hz).inverse().process(np.asarray(x, float))
     prev = None
@@ -111,7 +118,7 @@ def compensate_holds(memory: StripMemory, t_s, x, holds: Sequence, *, rate_hz: f
             y[start:a] = np.clip(y[start:a], np.where(np.isfinite(lo), lo, -np.inf),
                                  np.where(np.isfinite(hi), hi, np.inf))
         prev = (b, level)
-    return memory.pi_operator().inverse().process(y)
+    return y
 
 
 def unit_scale(seg: SegmentMemory) -> SegmentMemory:

@@ -188,6 +188,36 @@ def test_inverse_of_the_static_law_is_exact():
     assert np.allclose(x[inside], x_of_curvature(k[inside]), atol=1e-6)
 
 
+def test_flat_holds_become_rows_of_the_hysteresis_fit():
+    # Closed form: the play's definition, y_n = max(u_n - r, min(u_n + r, y_{n-1})) (Brokate & Sprekels
+    # 1996, from memory), run over the holds' levels, gives what the creep-free reading of each flat hold
+    # is (the creep's inverse is exact: tests/acquire/core/test_memory.py); its static signal is 0.
+    from acquire.commands.calibrate_memory import HoldSpan, HoldsSeries, _hold_rows
+
+    k, spans = hold_program(HOLDS)
+    t = np.arange(k.size) / RATE
+    series = HoldsSeries(t_s=t, resistance_ohm=strip_resistance(k, HYSTERESIS), rate_hz=RATE, holds=tuple(
+        HoldSpan(label, a, b, np.full(6, kk)) for (label, a, b), (_, kk) in zip(spans, HOLDS)))
+    law = Calibration(r0_ohm=R0, positive=[[C1, C2]] * 6, negative=[[D1]] * 6, x_min=np.full(6, -0.2),
+                      x_max=np.full(6, 0.6), curvature_min_per_m=np.full(6, -30.0),
+                      curvature_max_per_m=np.full(6, 46.8), readout_kind="divider", rig={"n_segments": 6})
+    [(y, u)] = _hold_rows(law, [series], np.full(6, 0.15), np.full(6, 1.0))
+    td = t[::10]  # decimated to about 100 frames/s
+    plays, want = np.zeros(len(GRID)), []
+    for (label, a, b), (_, kk) in zip(spans, HOLDS):
+        level = float(x_of_curvature(kk))
+        plays = np.maximum(level - np.array(GRID), np.minimum(level + np.array(GRID), plays))
+        rows = (td >= a) & (td <= b)
+        if kk == 0.0:
+            want.append(float(plays @ HYSTERESIS.pi_weights))
+            assert np.all(u[rows] == 0.0)
+            assert np.allclose(y[rows], want[-1], rtol=0, atol=2e-4)
+        else:
+            assert np.isnan(u[rows]).all()
+    assert want[1] == pytest.approx(0.0168, abs=1e-12)  # after the largest bend: sum of w_j r_j, every play turned
+    assert want[2] < -0.01  # after the opposite bend
+
+
 @pytest.fixture(scope="module")
 def motion_fit(files):
     rig = files["rig"]

@@ -63,6 +63,32 @@ def test_inverse_fit_gives_back_a_known_pi():
     assert np.allclose(back, y, rtol=0, atol=1e-9)
 
 
+def test_flat_rows_of_another_recording_pin_the_pi_against_the_films_own_offset():
+    # Closed form as above (the inverse of a PI is a PI, Krejci & Kuhnen 2001, from memory), now with the
+    # film's u off by a constant (its flat is not the holds' flat) and the flat holds of a holds recording
+    # (u = 0 after a bend to each side) as extra rows: the offset goes to the film's own column, the PI
+    # comes back exactly. Without those rows the plays take the offset for hysteresis.
+    r, w = np.array([0.0, 0.05, 0.1, 0.2]), np.array([0.7, 0.12, 0.1, 0.08])
+    pi = PIOperator(r[None], w[None])
+    t = np.linspace(0, 60, 6000)
+    u = (0.4 * np.sin(0.7 * t) + 0.25 * np.sin(2.3 * t + 1) * np.sin(0.13 * t))[:, None]
+    y = pi.process(u)[:, 0]
+    levels = [0.0, 0.8, 0.0, -0.5, 0.0]  # flat, the largest bend, flat, the opposite bend, flat
+    uh = np.concatenate([np.r_[np.linspace(a, b, 50), np.full(200, b)] for a, b in zip([0.0] + levels, levels)])
+    yh = PIOperator(r[None], w[None]).process(uh[:, None])[:, 0]  # a recording of its own, from rest
+    known = np.where((uh == 0.0) & (np.arange(uh.size) % 250 >= 50), 0.0, np.nan)
+    q = np.unique(np.r_[pi.inverse().thresholds[0], 0.01, 0.03, 0.3])
+    rows = np.ones(t.size, bool)
+    fr, fw, sse = fit_inverse_pi(y, u[:, 0] + 0.03, rows, q, extra=[(yh, known)])
+    assert sse < 1e-16 * t.size
+    back = StripMemory([SegmentMemory(fr, fw)]).forward(u, rate_hz=100.0)[:, 0]
+    assert np.allclose(back, y, rtol=0, atol=1e-9)
+    fr, fw, sse = fit_inverse_pi(y, u[:, 0] + 0.03, rows, q)  # the offset left to the plays
+    assert sse > 1e-8 * t.size
+    back = StripMemory([SegmentMemory(fr, fw)]).forward(u, rate_hz=100.0)[:, 0]
+    assert np.max(np.abs(back - y)) > 1e-3
+
+
 def test_shift_reference_on_a_ramp_and_best_lag_on_a_parabola():
     # Closed forms: a ramp read dt later is the ramp plus slope * dt; a parabola's vertex is -b / 2a.
     t = np.arange(100) * 0.01
