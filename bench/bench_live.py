@@ -194,7 +194,8 @@ def main(argv=None) -> int:
     rig = load_rig(None)
     cal = _calibration(rig)
     app = make_app()
-    session = LiveSession(rig=rig, calibration=cal, virtual_options=VirtualOptions(rate_hz=1000.0, max_chunk_s=args.chunk_ms / 1e3))
+    session = LiveSession(rig=rig, calibration=cal,
+                          virtual_options=VirtualOptions(rate_hz=1000.0, max_chunk_s=args.chunk_ms / 1e3))
     session.start()
     try:
         time.sleep(0.5)  # let the stream settle

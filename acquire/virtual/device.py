@@ -111,7 +111,8 @@ class VirtualFinger(Worker):
                  faults: Faults | None = None, hold: str | None = None, scenario: str = "grasp",
                  strip: StripSettings | None = None, mechanics: dict | None = None, time_scale: float = 1.0,
                  link_path=None, truth_path=None, markers_path=None, camera: CameraSettings | None = None,
-                 tx_buffer_bytes: int = 65536, tick_s: float = 0.005, max_tick_s: float = 0.02, max_rate_hz: float = 50000.0,
+                 tx_buffer_bytes: int = 65536, tick_s: float = 0.005, max_tick_s: float = 0.02,
+                 max_rate_hz: float = 50000.0,
                  noise_lsb: float = 1.2, clock_start_s: float = 0.0):
         super().__init__(name="virtual-finger")
         self.rig = rig if rig is not None else load_rig(None)
