@@ -18,8 +18,10 @@ import numpy as np
 
 from acquire.core.calibration import Calibration, FitReport
 from acquire.core.calibration_fit import Hold
+from acquire.core.memory_steps import MemoryReport
 
-__all__ = ["HoldInfo", "CalibrationRun", "fit_warnings", "print_holds_report"]
+__all__ = ["HoldInfo", "CalibrationRun", "MemoryCalibrationRun", "fit_warnings", "print_holds_report",
+           "memory_report_lines", "print_memory_report"]
 
 
 @dataclass
@@ -125,3 +127,29 @@ def print_holds_report(run: CalibrationRun, out: Path, stream: TextIO) -> None:
     for w in warns:
         p(f"  {w}")
     p(f"wrote {out}")
+
+
+@dataclass
+class MemoryCalibrationRun(CalibrationRun):
+    """A :class:`~acquire.commands.calibrate_run.CalibrationRun` with the memory fit's report (None: not fitted)."""
+
+    memory_report: MemoryReport | None = None
+    memory_note: str = ""
+
+
+def memory_report_lines(run) -> list[str]:
+    """The memory part of calibrate's printed report (empty for a run without one)."""
+    rep = getattr(run, "memory_report", None)
+    note = getattr(run, "memory_note", "")
+    if rep is None:
+        return [f"memory: {note}"] if note and not note.startswith("memory:") else ([note] if note else [])
+    kept = [s.segment for s in rep.segments if s.kept]
+    head = (f"memory (creep and hysteresis) kept in segment(s) {', '.join(map(str, kept))}:" if kept
+            else "memory (creep and hysteresis): not kept, the calibration is static:")
+    return [head, rep.text()]
+
+
+def print_memory_report(run, stream: TextIO) -> None:
+    """Print :func:`memory_report_lines` to ``stream``."""
+    for line in memory_report_lines(run):
+        print(line, file=stream)
