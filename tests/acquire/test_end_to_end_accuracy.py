@@ -32,8 +32,6 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from acquire.link.reader import SerialReader
-from acquire.store.recorder import Recorder
 from acquire.rig import load_rig
 from acquire.virtual import StripSettings, VirtualFinger
 
@@ -55,28 +53,8 @@ def tapcurve(*args: str, timeout_s: float = 120.0) -> subprocess.CompletedProces
                           timeout=timeout_s, cwd=REPO)
 
 
-def newest_time_s(ring) -> float:
-    return float(ring.latest(1).t_device_s[0])
-
-
 @pytest.fixture(scope="module")
-def session(tmp_path_factory, wait_until):
-    def wait_frames(ring, n: int) -> None:
-        """Until ``n`` more frames have arrived in the ring (each check waits on the ring's condition)."""
-        target = ring.written + n
-        wait_until(lambda: ring.wait(target - 1, 0.05), timeout_s=60, what=f"{n} more frames (ring at {target})")
-
-    def wait_held(ring, dev, k: float) -> None:
-        """Until the newest frame the host has was made on the jig (the device's truth, boot 1): frames still
-        in the pty when the jig changed must not start the label, however far the reader lags."""
-        def held() -> bool:
-            block = ring.latest(1)
-            if len(block) == 0:
-                return False
-            return bool(np.all(np.abs(dev.truth_for(1, block.seq)["curvature_per_m"][-1] - k) < 0.5))
-
-        wait_until(held, timeout_s=60, what=f"frames held at {k:g} 1/m to reach the host")
-
+def session(tmp_path_factory, record_jig_holds):
     d = tmp_path_factory.mktemp("e2e")
     rig = load_rig(RIG_PATH)
     # the ideal strip: the figures in the README's accuracy table (the real strip has its own rows)
@@ -84,32 +62,14 @@ def session(tmp_path_factory, wait_until):
                         truth_path=d / "truth.h5", strip=StripSettings(mode="ideal"))
     dev.start()
     try:
-        reader = SerialReader(port=dev.path)
-        reader.start()
-        rec = Recorder(path=d / "holds.h5", ring=reader.ring, rig_toml=rig.text,
-                       device_hello=json.dumps(reader.hello), channel_names=rig.channels,
-                       events=reader.events, counters=reader.all_counters, n_segments=rig.n_segments)
-        rec.start()
-        try:
-            wait_frames(reader.ring, int(0.2 * RATE_HZ))
-            for label, k in HOLDS:
-                dev.set_hold(label)  # the finger goes onto the next jig
-                wait_held(reader.ring, dev, k)
-                wait_frames(reader.ring, int(SETTLE_S * RATE_HZ))
-                t0 = newest_time_s(reader.ring)
-                wait_frames(reader.ring, int(HOLD_S * RATE_HZ))
-                rec.add_label(label, t_start_s=t0, t_end_s=newest_time_s(reader.ring))
-            dev.set_hold(None)  # off the jig: the grasp scenario plays
-        finally:
-            rec.stop()
-            reader.stop()
-        holds_counters = reader.all_counters()
+        holds_counters = record_jig_holds(dev, rig, d / "holds.h5", HOLDS, hold_s=HOLD_S, settle_s=SETTLE_S,
+                                          rate_hz=RATE_HZ)
+        dev.set_hold(None)  # off the jig: the grasp scenario plays
         r = tapcurve("record", "--port", dev.path, "--rig", str(RIG_PATH), "--out", str(d / "grasp.h5"),
                      "--duration", str(MOVING_S), "--label", "grasp (moving)", "--quiet")
         assert r.returncode == 0, r.stderr
     finally:
         dev.stop()
-    assert rec.error is None
     r = tapcurve("calibrate", str(d / "holds.h5"), "--rig", str(RIG_PATH), "--out", str(d / "cal.json"))
     assert r.returncode == 0, r.stderr
     calibrate_report = r.stdout

@@ -46,9 +46,7 @@ import h5py
 import numpy as np
 import pytest
 
-from acquire.link.reader import SerialReader
 from acquire.rig import load_rig
-from acquire.store.recorder import Recorder
 from acquire.virtual import StripSettings, VirtualFinger
 from acquire.virtual.camera import CameraSettings
 
@@ -99,51 +97,17 @@ def new_finger(rig, **kw) -> VirtualFinger:
     return VirtualFinger(rig=rig, rate_hz=RATE_HZ, seed=SEED, time_scale=TIME_SCALE, strip=StripSettings(), **kw)
 
 
-def record_holds(d: Path, rig, wait_until) -> dict:
+def record_holds(d: Path, rig, record_jig_holds) -> dict:
     """The labelled holds, as tests/acquire/test_end_to_end_accuracy.py records them (6 s each here)."""
-    def wait_frames(ring, n: int) -> None:
-        target = ring.written + n
-        wait_until(lambda: ring.wait(target - 1, 0.05), timeout_s=60, what=f"{n} more frames (ring at {target})")
-
-    def wait_held(ring, dev, k: float) -> None:
-        # the newest frame the host has was made on the jig: frames still in the pty when the jig changed
-        # must not start the label, however far the reader lags
-        def held() -> bool:
-            block = ring.latest(1)
-            if len(block) == 0:
-                return False
-            return bool(np.all(np.abs(dev.truth_for(1, block.seq)["curvature_per_m"][-1] - k) < 0.5))
-
-        wait_until(held, timeout_s=60, what=f"frames held at {k:g} 1/m to reach the host")
-
-    def newest_time_s(ring) -> float:
-        return float(ring.latest(1).t_device_s[0])
-
     dev = new_finger(rig, hold="flat", truth_path=d / "holds_truth.h5")
     dev.start()
     try:
-        reader = SerialReader(port=dev.path)
-        reader.start()
-        rec = Recorder(path=d / "holds.h5", ring=reader.ring, rig_toml=rig.text,
-                       device_hello=json.dumps(reader.hello), channel_names=rig.channels,
-                       events=reader.events, counters=reader.all_counters, n_segments=rig.n_segments)
-        rec.start()
-        try:
-            wait_frames(reader.ring, int(0.2 * RATE_HZ))
-            for label, k in HOLDS:
-                dev.set_hold(label)  # the finger goes onto the next jig
-                wait_held(reader.ring, dev, k)
-                wait_frames(reader.ring, int(SETTLE_S * RATE_HZ))
-                t0 = newest_time_s(reader.ring)
-                wait_frames(reader.ring, int(HOLD_S * RATE_HZ))
-                rec.add_label(label, t_start_s=t0, t_end_s=newest_time_s(reader.ring))
-        finally:
-            rec.stop()
-            reader.stop()
+        reader = record_jig_holds(dev, rig, d / "holds.h5", HOLDS, hold_s=HOLD_S, settle_s=SETTLE_S,
+                                  rate_hz=RATE_HZ)
     finally:
         dev.stop()
-    assert rec.error is None and dev.error is None
-    return {"reader": reader.all_counters(), "device": device_losses(dev)}
+    assert dev.error is None
+    return {"reader": reader, "device": device_losses(dev)}
 
 
 def record_motion(d: Path, rig, rig_path: Path, name: str, *, scenario: str, duration_s: float,
@@ -163,7 +127,7 @@ def record_motion(d: Path, rig, rig_path: Path, name: str, *, scenario: str, dur
 
 
 @pytest.fixture(scope="module")
-def memory_session(tmp_path_factory, wait_until):
+def memory_session(tmp_path_factory, record_jig_holds):
     t_start = time.monotonic()
     d = tmp_path_factory.mktemp("e2e_memory")
     rig_path = d / "rig_markers.toml"
@@ -171,7 +135,7 @@ def memory_session(tmp_path_factory, wait_until):
     rig_path.write_text(DEMO_RIG.read_text().replace(
         "[body]", f"[markers]\ns_mm = [{', '.join(map(str, MARKERS_S_MM))}]\n\n[body]"))
     rig = load_rig(rig_path)
-    counters = {"holds": record_holds(d, rig, wait_until)}
+    counters = {"holds": record_holds(d, rig, record_jig_holds)}
     # one after the other: each device thread runs in this process and shares its interpreter with the others
     counters["film"] = record_motion(d, rig, rig_path, "film", scenario="free", duration_s=FILM_S, film=True)
     counters["grasp"] = record_motion(d, rig, rig_path, "grasp", scenario="grasp", duration_s=GRASP_S, film=False)
