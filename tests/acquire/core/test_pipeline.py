@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import threading
+import time
 
 import numpy as np
 import pytest
@@ -145,10 +146,15 @@ def test_calibration_swapped_only_at_block_boundaries(rig):
     th = threading.Thread(target=gui, daemon=True)
     th.start()
     assert toggled.wait(timeout=5.0)
-    seen = set()
+    seen, n_blocks = set(), 0
+    deadline = time.monotonic() + 30.0
     try:
-        for i in range(0, codes.shape[0], 10):
-            out = pipe.process(block(codes[i:i + 10], i))
+        # at least the whole stream, then on until both calibrations were met: on a busy machine the
+        # swapping thread may not run at all during 100 blocks (seen failing under load)
+        while n_blocks < 100 or (seen != {"a", "b"} and time.monotonic() < deadline):
+            i = 10 * (n_blocks % 100)
+            out = pipe.process(block(codes[i:i + 10], 10 * n_blocks))  # seq runs on
+            n_blocks += 1
             ka = cal_a.curvature_per_m(out.filtered_ohm).astype(np.float32)
             kb = cal_b.curvature_per_m(out.filtered_ohm).astype(np.float32)
             is_a = np.array_equal(out.curvature_per_m, ka)
