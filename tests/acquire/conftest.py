@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import json
 
+import h5py
 import numpy as np
 import pytest
 
@@ -71,3 +72,23 @@ def record_jig_holds(wait_until):
         return reader.all_counters()
 
     return record
+
+
+@pytest.fixture(scope="session")
+def truth_rows():
+    """A function: ``truth_rows(path, seq, codes)``, the device truth file's rows (dict of arrays:
+    ``curvature_per_m`` (N, S) 1/m, ``tip_xy_m`` (N, 2) m) of recorded frames: boot 1, the same sequence
+    numbers; asserts the codes are the same too (the frames crossed the pty bit for bit, so the
+    alignment is exact)."""
+    def rows(path, seq: np.ndarray, codes: np.ndarray) -> dict:
+        with h5py.File(path, "r") as t:
+            boot = t["boot"][:]
+            tseq = t["seq"][:]
+            sel = np.flatnonzero(boot == 1)
+            order = sel[np.argsort(tseq[sel])]
+            idx = order[np.searchsorted(tseq[order], seq)]
+            assert np.array_equal(tseq[idx], seq)
+            assert np.array_equal(t["codes"][:][idx], codes)
+            return {"curvature_per_m": t["curvature_per_m"][:][idx], "tip_xy_m": t["tip_xy_m"][:][idx]}
+
+    return rows

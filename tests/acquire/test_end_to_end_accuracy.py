@@ -80,25 +80,11 @@ def session(tmp_path_factory, record_jig_holds):
     return {"dir": d, "rig": rig, "holds_counters": holds_counters, "calibrate_report": calibrate_report}
 
 
-def truth_of(d: Path, seq: np.ndarray, codes: np.ndarray) -> dict:
-    """The truth rows of the recorded frames: same boot, same sequence number, same codes."""
-    with h5py.File(d / "truth.h5", "r") as t:
-        boot = t["boot"][:]
-        tseq = t["seq"][:]
-        sel = np.flatnonzero(boot == 1)
-        order = sel[np.argsort(tseq[sel])]
-        idx = order[np.searchsorted(tseq[order], seq)]
-        assert np.array_equal(tseq[idx], seq)
-        # the frames crossed the pty bit for bit: the alignment is exact
-        assert np.array_equal(t["codes"][:][idx], codes)
-        return {"curvature_per_m": t["curvature_per_m"][:][idx], "tip_xy_m": t["tip_xy_m"][:][idx]}
-
-
-def figures(d: Path, name: str) -> dict:
+def figures(d: Path, name: str, truth_rows) -> dict:
     with h5py.File(d / "grasp.h5", "r") as f:
         seq = f["raw/seq"][:]
         codes = f["raw/adc"][:]
-    truth = truth_of(d, seq, codes)
+    truth = truth_rows(d / "truth.h5", seq, codes)
     with h5py.File(d / f"{name}.h5", "r") as f:
         tap_end = int(f["derived"].attrs["tap_index"][-1])
         length = float(f["derived/s_m"][tap_end])
@@ -145,10 +131,10 @@ def test_calibration_fits_the_holds(session):
         assert seg["rms_residual_per_m"] < 0.2
 
 
-def test_tip_accuracy_against_ground_truth(session):
+def test_tip_accuracy_against_ground_truth(session, truth_rows):
     rig = session["rig"]
-    causal = figures(session["dir"], "causal")
-    zero = figures(session["dir"], "zero-phase")
+    causal = figures(session["dir"], "causal", truth_rows)
+    zero = figures(session["dir"], "zero-phase", truth_rows)
     predicted = predicted_lag_frames(rig)
     lines = [
         "",

@@ -155,26 +155,12 @@ def memory_session(tmp_path_factory, record_jig_holds):
                        "total": t_end - t_start}}
 
 
-def grasp_truth(d: Path, seq: np.ndarray, codes: np.ndarray) -> np.ndarray:
-    """The truth's sensor end point (N, 2), m, of the recorded frames: boot 1, same seq, same codes."""
-    with h5py.File(d / "grasp_truth.h5", "r") as t:
-        boot = t["boot"][:]
-        tseq = t["seq"][:]
-        sel = np.flatnonzero(boot == 1)
-        order = sel[np.argsort(tseq[sel])]
-        idx = order[np.searchsorted(tseq[order], seq)]
-        assert np.array_equal(tseq[idx], seq)
-        # the frames crossed the pty bit for bit: the alignment is exact
-        assert np.array_equal(t["codes"][:][idx], codes)
-        return t["tip_xy_m"][:][idx]
-
-
-def tip_figures(d: Path, name: str) -> dict:
+def tip_figures(d: Path, name: str, truth_rows) -> dict:
     """Tip error of the grasp processed with calibration ``name``: mean and max, % of the sensor length."""
     with h5py.File(d / "grasp.h5", "r") as f:
         seq = f["raw/seq"][:]
         codes = f["raw/adc"][:]
-    truth = grasp_truth(d, seq, codes)
+    truth = truth_rows(d / "grasp_truth.h5", seq, codes)["tip_xy_m"]
     with h5py.File(d / f"grasp_{name}.h5", "r") as f:
         tap_end = int(f["derived"].attrs["tap_index"][-1])
         length = float(f["derived/s_m"][tap_end])
@@ -204,14 +190,14 @@ def test_serial_path_lost_nothing(memory_session):
 
 
 @pytest.mark.slow  # the shared fixture above
-def test_memory_calibration_reaches_the_requirement(memory_session):
+def test_memory_calibration_reaches_the_requirement(memory_session, truth_rows):
     d = memory_session["dir"]
     doc = json.loads((d / "cal_memory.json").read_text())
     static_doc = json.loads((d / "cal_static.json").read_text())
     assert static_doc.get("memory") is None  # --static: no memory section
     segs = doc["memory"]["fit_report"]["segments"]
     assert len(segs) == memory_session["rig"].n_segments
-    memory, static = tip_figures(d, "memory"), tip_figures(d, "static")
+    memory, static = tip_figures(d, "memory", truth_rows), tip_figures(d, "static", truth_rows)
     wall = memory_session["wall_s"]
     lines = [
         "",
